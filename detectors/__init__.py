@@ -1,0 +1,1 @@
+"""Detector implementations behind the one contract (fit on windows, score per window)."""

@@ -1,0 +1,212 @@
+"""Command line: one verb per stage of the harness."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import textwrap
+from pathlib import Path
+
+from harness import __version__
+from harness.errors import LogtrialError
+
+
+def _table(rows: list[dict], columns: list[str]) -> str:
+    """Render rows as a plain aligned text table."""
+    widths = {c: max([len(c)] + [len(str(r.get(c, ""))) for r in rows]) for c in columns}
+    head = "  ".join(c.ljust(widths[c]) for c in columns)
+    rule = "  ".join("-" * widths[c] for c in columns)
+    body = ["  ".join(str(r.get(c, "")).ljust(widths[c]) for c in columns) for r in rows]
+    return "\n".join([head, rule, *body])
+
+
+def _registry(args: argparse.Namespace):
+    from harness.registry import load_registry
+
+    return load_registry([Path(p) for p in getattr(args, "registry", None) or []])
+
+
+def cmd_datasets(args: argparse.Namespace) -> int:
+    """List the registry and what is on disk."""
+    from harness.acquire import status
+    from harness.registry import home_dir
+
+    reg = _registry(args)
+    home = home_dir()
+    rows = []
+    for name, e in sorted(reg.items()):
+        lines = e.expected.get("lines")
+        rows.append(
+            {
+                "name": name,
+                "system": e.system,
+                "lines": f"{int(lines):,}" if lines else "?",
+                "labels": e.labels.scheme,
+                "licence": (e.licence.split(":")[0] if e.licence else "-")[:28],
+                "on disk": "generated on demand" if e.generator is not None else status(e, home),
+            }
+        )
+    print(_table(rows, ["name", "system", "lines", "labels", "licence", "on disk"]))
+    print(f"\ndata folder: {home}  (set LOGTRIAL_HOME to move it)")
+    return 0
+
+
+def cmd_fetch(args: argparse.Namespace) -> int:
+    """Acquire and verify one dataset."""
+    from harness.acquire import fetch
+    from harness.registry import get_entry, home_dir
+
+    entry = get_entry(args.name, _registry(args))
+    res = fetch(entry, home=home_dir(), mirror=Path(args.mirror) if args.mirror else None, progress=True)
+    state = "already present, verified against the lock" if res.cached else "fetched and verified"
+    print(f"{entry.name}: {state}: {res.path}")
+    if res.recorded_hashes:
+        print("  first fetch: sizes and sha256 recorded in the lock file")
+    return 0
+
+
+def _print_ingest(res, name: str) -> None:
+    m = res.manifest
+    how = "reused cached table" if res.cached else "built event table"
+    print(f"{name}: {how}: {res.events}")
+    print(f"  rows {m['rows']:,} of {m['lines']:,} lines, {m['templates']:,} templates, "
+          f"quarantined {m['quarantined']:,}" + (f" (see {res.quarantine})" if m["quarantined"] else ""))
+    if m.get("bad_encoding_lines"):
+        first = ", ".join(str(x) for x in m["first_bad_encoding_lines"])
+        print(f"  warning: {m['bad_encoding_lines']:,} line(s) had bytes that are not valid "
+              f"{m['format']['encoding']}; replaced with U+FFFD (first at line {first})", file=sys.stderr)
+
+
+def cmd_ingest(args: argparse.Namespace) -> int:
+    """Build or reuse an event table."""
+    from harness.ingest import ingest_entry, ingest_files
+    from harness.registry import format_from_file, get_entry, home_dir, miner_from_file
+
+    home = home_dir()
+    opts = dict(force=args.force, strict=args.strict, progress=True)
+    if args.file:
+        if not args.format:
+            raise LogtrialError("ingest --file needs --format FILE.yaml (a `regex` with a `content` group)")
+        fmt = format_from_file(Path(args.format))
+        miner = miner_from_file(Path(args.format))
+        name = args.name or f"file-{Path(args.file).stem.lower()}"
+        res = ingest_files(name, [Path(args.file)], fmt, miner, home / "tables", **opts)
+    else:
+        if not args.name:
+            raise LogtrialError("ingest needs a dataset NAME or --file LOG --format FORMAT.yaml")
+        entry = get_entry(args.name, _registry(args))
+        res = ingest_entry(entry, home, Path(args.mirror) if args.mirror else None, **opts)
+        name = entry.name
+    _print_ingest(res, name)
+    return 0
+
+
+def cmd_parse_score(args: argparse.Namespace) -> int:
+    """Grouping accuracy of the miner against ground-truth templates."""
+    from harness.ingest import entry_files, ingest_entry
+    from harness.parse_score import score_against_truth
+    from harness.registry import get_entry, home_dir
+
+    entry = get_entry(args.name, _registry(args))
+    if entry.truth is None:
+        raise LogtrialError(f"dataset '{entry.name}' has no ground-truth template file (`truth:` in the registry)")
+    home = home_dir()
+    mirror = Path(args.mirror) if args.mirror else None
+    res = ingest_entry(entry, home, mirror, progress=True)
+    truth_path = entry_files(entry, home, mirror)[0].parent / entry.truth.file
+    score = score_against_truth(res.events, res.templates, truth_path, entry.truth)
+    rows = [{"dataset": entry.name, **{k: (f"{v:.4f}" if isinstance(v, float) else v) for k, v in score.items()}}]
+    print(_table(rows, list(rows[0])))
+    return 0
+
+
+def cmd_simulate(args: argparse.Namespace) -> int:
+    """Write a simulated fleet's logs and incidents."""
+    from harness.simulate import generate, load_scenario
+
+    scenario = load_scenario(args.config)
+    if args.seed is not None:
+        scenario = scenario.model_copy(update={"seed": args.seed})
+    res = generate(scenario, Path(args.out), progress=True)
+    print(f"simulated fleet written to {args.out}")
+    print(textwrap.indent(str(res), "  "))
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser with every verb and its examples."""
+    p = argparse.ArgumentParser(
+        prog="logtrial",
+        description="Offline evaluation harness for log-based anomaly detection and failure prediction.",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog="Example: logtrial demo   (the whole job on the built-in radar-relay scenario)",
+    )
+    p.add_argument("--version", action="version", version=f"logtrial {__version__}")
+    sub = p.add_subparsers(dest="verb", metavar="VERB")
+
+    def verb(name: str, func, help_: str, example: str) -> argparse.ArgumentParser:
+        sp = sub.add_parser(name, help=help_, description=help_, epilog=f"Example:\n  {example}",
+                            formatter_class=argparse.RawDescriptionHelpFormatter)
+        sp.set_defaults(func=func)
+        return sp
+
+    def registry_opt(sp: argparse.ArgumentParser) -> None:
+        sp.add_argument("--registry", action="append", metavar="FILE",
+                        help="extra registry YAML with more datasets (repeatable)")
+
+    sp = verb("datasets", cmd_datasets, "list the registry and what is on disk", "logtrial datasets")
+    registry_opt(sp)
+
+    sp = verb("fetch", cmd_fetch, "acquire a dataset and verify its size and sha256",
+              "logtrial fetch bgl-2k --mirror ../shared/datasets/loghub-2k")
+    sp.add_argument("name", metavar="NAME")
+    sp.add_argument("--mirror", metavar="DIR", help="local folder holding the files (default: LOGTRIAL_MIRROR)")
+    registry_opt(sp)
+
+    sp = verb("ingest", cmd_ingest, "build (or reuse) the event table of a dataset or a log file",
+              "logtrial ingest bgl-2k\n  logtrial ingest --file my.log --format my-format.yaml")
+    sp.add_argument("name", metavar="NAME", nargs="?")
+    sp.add_argument("--file", metavar="LOG", help="ingest this log file instead of a registry dataset")
+    sp.add_argument("--format", metavar="YAML", help="line format for --file (regex with a `content` group)")
+    sp.add_argument("--mirror", metavar="DIR")
+    sp.add_argument("--force", action="store_true", help="rebuild even when a cached table matches")
+    sp.add_argument("--strict", action="store_true", help="stop at the first undecodable line instead of replacing")
+    registry_opt(sp)
+
+    sp = verb("parse-score", cmd_parse_score, "template grouping accuracy against ground-truth templates",
+              "logtrial parse-score bgl-2k")
+    sp.add_argument("name", metavar="NAME")
+    sp.add_argument("--mirror", metavar="DIR")
+    registry_opt(sp)
+
+    sp = verb("simulate", cmd_simulate, "write a simulated radar-relay fleet's logs and incidents",
+              "logtrial simulate --out sim/\n  logtrial simulate scenario.yaml --out sim/")
+    sp.add_argument("config", metavar="CONFIG", nargs="?", help="scenario YAML (default: built-in scenario)")
+    sp.add_argument("--out", required=True, metavar="DIR")
+    sp.add_argument("--seed", type=int)
+
+    from harness.demo import add_demo_parser
+
+    add_demo_parser(verb)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the `logtrial` command."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args.func(args) or 0)
+    except LogtrialError as exc:
+        print(f"logtrial {args.verb}: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,349 @@
+"""Ingest: stream log files through the line format and the template miner into a Parquet event table."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import re
+import shutil
+import sys
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from harness import __version__
+from harness.errors import DataError
+from harness.mining import TemplateMiner, registry_miner
+from harness.registry import LineFormat, Miner
+
+# Bump when the event-table layout or parsing rules change: old caches are then rebuilt.
+TABLE_VERSION = 1
+CHUNK_LINES = 200_000
+QUARANTINE_TEXT_CHARS = 500
+
+EVENT_SCHEMA = pa.schema(
+    [
+        ("line", pa.int64()),
+        ("ts", pa.timestamp("us", tz="UTC")),
+        ("entity", pa.string()),
+        ("group", pa.string()),
+        ("event", pa.int32()),
+        ("tag", pa.string()),
+    ]
+)
+
+
+@dataclass
+class IngestResult:
+    """Where an event table lives and what went into it."""
+
+    folder: Path
+    events: Path
+    templates: Path
+    manifest: dict
+    cached: bool
+
+    @property
+    def quarantine(self) -> Path:
+        """Path of the quarantine file (lines that failed the format)."""
+        return self.folder / "quarantine.tsv"
+
+
+@dataclass
+class _Counters:
+    lines: int = 0
+    rows: int = 0
+    quarantined: int = 0
+    bad_encoding_lines: int = 0
+    first_bad_encoding: list = field(default_factory=list)
+    reasons: dict = field(default_factory=dict)
+
+
+def file_sha256(path: Path, block: int = 1 << 20) -> str:
+    """SHA-256 hex digest of a file, streamed."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while chunk := fh.read(block):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def cache_key(files: list[Path], fmt: LineFormat, miner: Miner) -> tuple[str, dict]:
+    """Hash of everything an event table depends on: input bytes, format, miner settings, code version."""
+    inputs = [{"file": p.name, "size": p.stat().st_size, "sha256": file_sha256(p)} for p in files]
+    basis = {
+        "inputs": inputs,
+        "format": fmt.model_dump(mode="json"),
+        "miner": miner.model_dump(mode="json"),
+        "table_version": TABLE_VERSION,
+        "code_version": __version__,
+    }
+    digest = hashlib.sha256(json.dumps(basis, sort_keys=True).encode()).hexdigest()
+    return digest, basis
+
+
+def _decoded_lines(path: Path, encoding: str, counters: _Counters, strict: bool) -> Iterator[list[str]]:
+    """Yield chunks of decoded lines (without newlines); undecodable bytes are replaced and counted."""
+    with open(path, "rb") as fh:
+        lineno = counters.lines
+        while True:
+            raw = fh.readlines(1 << 24)
+            if not raw:
+                break
+            blob = b"".join(raw)
+            try:
+                text = blob.decode(encoding)
+                lines = text.split("\n")
+                if lines and lines[-1] == "":
+                    lines.pop()
+            except UnicodeDecodeError:
+                lines = []
+                for i, b in enumerate(raw):
+                    try:
+                        s = b.decode(encoding)
+                    except UnicodeDecodeError as exc:
+                        if strict:
+                            raise DataError(
+                                f"{path}: line {lineno + i + 1}: byte {exc.start} is not valid {encoding} "
+                                f"(expected {encoding} text; ingest without --strict to replace such bytes)"
+                            ) from None
+                        s = b.decode(encoding, errors="replace")
+                        counters.bad_encoding_lines += 1
+                        if len(counters.first_bad_encoding) < 5:
+                            counters.first_bad_encoding.append(lineno + i + 1)
+                    lines.append(s[:-1] if s.endswith("\n") else s)
+            lines = [s[:-1] if s.endswith("\r") else s for s in lines]
+            lineno += len(lines)
+            yield lines
+
+
+def _parse_timestamps(parts: pd.DataFrame, fmt: LineFormat) -> pd.Series:
+    """Vectorised timestamp parsing per the format's rule, in UTC; NaT where a value does not parse."""
+    ts = fmt.timestamp
+    assert ts is not None
+    joined = parts[ts.fields[0]].astype(str)
+    for f in ts.fields[1:]:
+        joined = joined + " " + parts[f].astype(str)
+    if ts.unit is not None:
+        num = pd.to_numeric(joined, errors="coerce")
+        out = pd.to_datetime(num, unit=ts.unit, errors="coerce", utc=True)
+    else:
+        pattern = ts.format
+        if ts.default_year is not None:
+            joined = f"{ts.default_year} " + joined
+            pattern = "%Y " + pattern
+        # Repeated whitespace (e.g. "Jul  1") parses the same as one space.
+        joined = joined.str.replace(r"\s+", " ", regex=True)
+        out = pd.to_datetime(joined, format=pattern, errors="coerce")
+        out = out.dt.tz_localize(ts.tz) if out.dt.tz is None else out
+        out = out.dt.tz_convert("UTC")
+    return out.astype("datetime64[us, UTC]")
+
+
+class _LineParser:
+    """Applies one line format to chunks of lines."""
+
+    def __init__(self, fmt: LineFormat, path_group: str | None = None):
+        self.fmt = fmt
+        self.rx = fmt.compiled()
+        self.fields = ["content"]
+        if fmt.timestamp:
+            self.fields += [f for f in fmt.timestamp.fields if f not in self.fields]
+        for name in (fmt.entity, fmt.group.field if fmt.group else None, fmt.tag.field if fmt.tag else None):
+            if name and name not in self.fields:
+                self.fields.append(name)
+        self.group_rx = re.compile(fmt.group.pattern) if fmt.group and fmt.group.pattern else None
+        self.path_group = path_group
+
+    def parse(self, lines: list[str], first_line: int) -> tuple[pd.DataFrame, list[tuple[int, str, str]]]:
+        """Split lines into header fields; return parsed rows and (line, reason, text) rejects."""
+        match = self.rx.match
+        matches = [match(s) for s in lines]
+        ok = np.fromiter((m is not None for m in matches), dtype=bool, count=len(matches))
+        bad = [(first_line + i, "line does not match the format's regex", lines[i]) for i in np.flatnonzero(~ok)]
+        good = [m for m in matches if m is not None]
+        cols = {f: [m.group(f) or "" for m in good] for f in self.fields}
+        df = pd.DataFrame(cols)
+        df["line"] = np.flatnonzero(ok).astype(np.int64) + first_line
+        df["content"] = df["content"].str.strip()
+        if self.fmt.timestamp:
+            df["ts"] = _parse_timestamps(df, self.fmt)
+            nat = df["ts"].isna().to_numpy()
+            if nat.any():
+                raw = df.loc[nat, self.fmt.timestamp.fields].astype(str).agg(" ".join, axis=1)
+                expect = self.fmt.timestamp.format or f"epoch {self.fmt.timestamp.unit}"
+                bad += [
+                    (int(ln), f"timestamp {val!r} does not match {expect!r}", lines[int(ln) - first_line])
+                    for ln, val in zip(df.loc[nat, "line"], raw)
+                ]
+                df = df.loc[~nat].reset_index(drop=True)
+        else:
+            # No timestamp in the format: the line number stands in as seconds since the epoch,
+            # so time-ordered stages still see the file order.
+            df["ts"] = pd.to_datetime(df["line"], unit="s", utc=True).astype("datetime64[us, UTC]")
+        df["entity"] = df[self.fmt.entity] if self.fmt.entity else ""
+        if self.group_rx is not None:
+            # First match in the content is the session key (a line naming several keys counts for the first).
+            which = 1 if self.group_rx.groups else 0
+            search = self.group_rx.search
+            df["group"] = [m.group(which) if (m := search(c)) else None for c in df["content"]]
+        elif self.fmt.group and self.fmt.group.field:
+            df["group"] = df[self.fmt.group.field].replace("", None)
+        else:
+            df["group"] = self.path_group
+        if self.fmt.tag:
+            tag = df[self.fmt.tag.field]
+            df["tag"] = tag.where(tag != self.fmt.tag.normal, "")
+        else:
+            df["tag"] = ""
+        bad.sort()
+        return df, bad
+
+
+def _path_group(path: Path, fmt: LineFormat) -> str | None:
+    """Session key taken from the file path, when the format says so."""
+    if not (fmt.group and fmt.group.path):
+        return None
+    m = re.search(fmt.group.path, path.as_posix())
+    return (m.group(1) if m.groups() else m.group(0)) if m else None
+
+
+def ingest_files(
+    name: str,
+    files: list[Path],
+    fmt: LineFormat,
+    miner_settings: Miner,
+    out_root: Path,
+    *,
+    force: bool = False,
+    strict: bool = False,
+    progress: bool = False,
+    miner: TemplateMiner | None = None,
+) -> IngestResult:
+    """Build (or reuse) the event table, template dictionary and manifest for the given log files."""
+    files = [Path(f) for f in files]
+    for f in files:
+        if not f.is_file():
+            raise DataError(f"{f}: log file not found")
+        if f.stat().st_size == 0:
+            raise DataError(f"{f}: file is empty (expected log lines)")
+    key, basis = cache_key(files, fmt, miner_settings)
+    folder = Path(out_root) / name / key[:16]
+    manifest_path = folder / "manifest.json"
+    if not force and manifest_path.is_file():
+        manifest = json.loads(manifest_path.read_text())
+        if manifest.get("key") == key:
+            return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", manifest, cached=True)
+
+    miner = miner or registry_miner(miner_settings.model_dump())
+    folder.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{key[:16]}.tmp-", dir=folder.parent))
+    try:
+        counters = _Counters()
+        _write_table(files, fmt, miner, tmp, counters, strict, progress)
+        if counters.rows == 0:
+            first = next(iter(counters.reasons), "no lines")
+            raise DataError(
+                f"{files[0]}: no line matched the format ({counters.quarantined} quarantined; first reason: {first}); "
+                "expected at least one line with the format's fields"
+            )
+        templates = pd.DataFrame(
+            {"event": np.arange(len(miner.templates()), dtype=np.int32), "template": miner.templates(),
+             "count": np.asarray(miner.counts(), dtype=np.int64)}
+        )
+        templates.to_csv(tmp / "templates.csv", index=False)
+        manifest = {
+            "key": key,
+            "dataset": name,
+            **basis,
+            "rows": counters.rows,
+            "lines": counters.lines,
+            "quarantined": counters.quarantined,
+            "quarantine_reasons": counters.reasons,
+            "bad_encoding_lines": counters.bad_encoding_lines,
+            "first_bad_encoding_lines": counters.first_bad_encoding,
+            "templates": len(templates),
+            "mined_lines": counters.rows,
+        }
+        (tmp / "manifest.json").write_text(json.dumps(manifest, indent=2, sort_keys=True))
+        if folder.exists():
+            shutil.rmtree(folder)
+        os.replace(tmp, folder)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", manifest, cached=False)
+
+
+def _write_table(
+    files: list[Path], fmt: LineFormat, miner: TemplateMiner, out: Path, counters: _Counters, strict: bool,
+    progress: bool,
+) -> None:
+    """Stream all files chunk by chunk into events.parquet and quarantine.tsv inside ``out``."""
+    from tqdm import tqdm
+
+    total = sum(f.stat().st_size for f in files)
+    bar = tqdm(total=total, unit="B", unit_scale=True, desc="ingest", disable=not progress, file=sys.stderr)
+    writer = pq.ParquetWriter(out / "events.parquet", EVENT_SCHEMA, compression="zstd")
+    with open(out / "quarantine.tsv", "w", encoding="utf-8") as qf:
+        qf.write("line\treason\ttext\n")
+        try:
+            for path in files:
+                parser = _LineParser(fmt, _path_group(path, fmt))
+                for lines in _decoded_lines(path, fmt.encoding, counters, strict):
+                    first = counters.lines + 1
+                    counters.lines += len(lines)
+                    df, bad = parser.parse(lines, first)
+                    for ln, reason, text in bad:
+                        kind = "timestamp does not parse" if reason.startswith("timestamp") else reason
+                        counters.reasons[kind] = counters.reasons.get(kind, 0) + 1
+                        clean = text[:QUARANTINE_TEXT_CHARS].replace("\t", " ")
+                        qf.write(f"{ln}\t{reason}\t{clean}\n")
+                    counters.quarantined += len(bad)
+                    if len(df):
+                        df["event"] = miner.add_many(df["content"].tolist()).astype(np.int32)
+                        table = pa.Table.from_pandas(df[[c.name for c in EVENT_SCHEMA]], schema=EVENT_SCHEMA,
+                                                     preserve_index=False)
+                        writer.write_table(table)
+                        counters.rows += len(df)
+                    bar.update(sum(len(s) + 1 for s in lines))
+        finally:
+            writer.close()
+            bar.close()
+
+
+def read_events(path: Path) -> pd.DataFrame:
+    """Load an event table written by ingest."""
+    return pq.read_table(path).to_pandas()
+
+
+def entry_files(entry, home: Path, mirror: Path | None = None, progress: bool = False) -> list[Path]:
+    """Local paths of an entry's log files, acquiring (or generating) them first when needed."""
+    if entry.generator is not None:
+        from harness.simulate import ensure_generated, load_scenario
+
+        folder = ensure_generated(load_scenario(entry.generator), home / "generated", progress=progress)
+    else:
+        from harness.acquire import fetch
+
+        folder = fetch(entry, home=home, mirror=mirror, progress=progress).path
+    found: list[Path] = []
+    for pattern in entry.logs:
+        hits = sorted(folder.glob(pattern))
+        if not hits:
+            raise DataError(f"{folder}: dataset '{entry.name}' has no file matching {pattern!r} (listed under `logs`)")
+        found += [h for h in hits if h.is_file()]
+    return found
+
+
+def ingest_entry(entry, home: Path, mirror: Path | None = None, **kwargs) -> IngestResult:
+    """Acquire (if needed) and ingest a registry entry into ``home/tables``."""
+    files = entry_files(entry, home, mirror, progress=kwargs.get("progress", False))
+    return ingest_files(entry.name, files, entry.format, entry.miner, home / "tables", **kwargs)
