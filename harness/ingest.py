@@ -128,9 +128,9 @@ def _parse_timestamps(parts: pd.DataFrame, fmt: LineFormat) -> pd.Series:
     """Vectorised timestamp parsing per the format's rule, in UTC; NaT where a value does not parse."""
     ts = fmt.timestamp
     assert ts is not None
-    joined = parts[ts.fields[0]].astype(str)
+    joined = parts[f"f_{ts.fields[0]}"].astype(str)
     for f in ts.fields[1:]:
-        joined = joined + " " + parts[f].astype(str)
+        joined = joined + " " + parts[f"f_{f}"].astype(str)
     if ts.unit is not None:
         num = pd.to_numeric(joined, errors="coerce")
         out = pd.to_datetime(num, unit=ts.unit, errors="coerce", utc=True)
@@ -169,15 +169,17 @@ class _LineParser:
         ok = np.fromiter((m is not None for m in matches), dtype=bool, count=len(matches))
         bad = [(first_line + i, "line does not match the format's regex", lines[i]) for i in np.flatnonzero(~ok)]
         good = [m for m in matches if m is not None]
-        cols = {f: [m.group(f) or "" for m in good] for f in self.fields}
-        df = pd.DataFrame(cols)
+        if not good:
+            return pd.DataFrame(columns=[c.name for c in EVENT_SCHEMA]), bad
+        # Header fields live under an `f_` prefix so they never collide with table columns.
+        df = pd.DataFrame({f"f_{f}": [m.group(f) or "" for m in good] for f in self.fields})
         df["line"] = np.flatnonzero(ok).astype(np.int64) + first_line
-        df["content"] = df["content"].str.strip()
+        df["content"] = df["f_content"].str.strip()
         if self.fmt.timestamp:
             df["ts"] = _parse_timestamps(df, self.fmt)
             nat = df["ts"].isna().to_numpy()
             if nat.any():
-                raw = df.loc[nat, self.fmt.timestamp.fields].astype(str).agg(" ".join, axis=1)
+                raw = df.loc[nat, [f"f_{f}" for f in self.fmt.timestamp.fields]].astype(str).agg(" ".join, axis=1)
                 expect = self.fmt.timestamp.format or f"epoch {self.fmt.timestamp.unit}"
                 bad += [
                     (int(ln), f"timestamp {val!r} does not match {expect!r}", lines[int(ln) - first_line])
@@ -188,18 +190,18 @@ class _LineParser:
             # No timestamp in the format: the line number stands in as seconds since the epoch,
             # so time-ordered stages still see the file order.
             df["ts"] = pd.to_datetime(df["line"], unit="s", utc=True).astype("datetime64[us, UTC]")
-        df["entity"] = df[self.fmt.entity] if self.fmt.entity else ""
+        df["entity"] = df[f"f_{self.fmt.entity}"] if self.fmt.entity else ""
         if self.group_rx is not None:
             # First match in the content is the session key (a line naming several keys counts for the first).
             which = 1 if self.group_rx.groups else 0
             search = self.group_rx.search
             df["group"] = [m.group(which) if (m := search(c)) else None for c in df["content"]]
         elif self.fmt.group and self.fmt.group.field:
-            df["group"] = df[self.fmt.group.field].replace("", None)
+            df["group"] = df[f"f_{self.fmt.group.field}"].replace("", None)
         else:
             df["group"] = self.path_group
         if self.fmt.tag:
-            tag = df[self.fmt.tag.field]
+            tag = df[f"f_{self.fmt.tag.field}"]
             df["tag"] = tag.where(tag != self.fmt.tag.normal, "")
         else:
             df["tag"] = ""
