@@ -336,13 +336,9 @@ def entry_files(entry, home: Path, mirror: Path | None = None, progress: bool = 
         from harness.acquire import fetch
 
         folder = fetch(entry, home=home, mirror=mirror, progress=progress).path
-    found: list[Path] = []
-    for pattern in entry.logs:
-        hits = sorted(folder.glob(pattern))
-        if not hits:
-            raise DataError(f"{folder}: dataset '{entry.name}' has no file matching {pattern!r} (listed under `logs`)")
-        found += [h for h in hits if h.is_file()]
-    return found
+    from harness.acquire import log_files
+
+    return log_files(entry, folder)
 
 
 def ingest_entry(entry, home: Path, mirror: Path | None = None, **kwargs) -> IngestResult:

@@ -225,3 +225,19 @@ def test_cli_empty_file_exit_code(tmp_path: Path, home: Path, capsys) -> None:
     fmt.write_text("regex: '^(?P<content>.*)$'\n")
     assert main(["ingest", "--file", str(log), "--format", str(fmt)]) == 1
     assert "empty.log: file is empty" in capsys.readouterr().err
+
+
+def test_cli_fetch_ingest_parse_score_on_real_sample(loghub_dir: Path, home: Path, capsys) -> None:
+    # External reference: published Drain grouping accuracy on BGL_2k is 0.963 (Zhu et al.,
+    # ICSE-SEIP 2019, accuracy table), with the benchmark's settings from the registry.
+    assert main(["fetch", "bgl-2k", "--mirror", str(loghub_dir)]) == 0
+    assert main(["ingest", "bgl-2k", "--mirror", str(loghub_dir)]) == 0
+    assert main(["parse-score", "bgl-2k", "--mirror", str(loghub_dir)]) == 0
+    out = capsys.readouterr().out
+    assert "fetched and verified" in out and "built event table" in out
+    row = [ln for ln in out.splitlines() if ln.startswith("bgl-2k ")][-1].split()
+    ga = float(row[4])
+    assert abs(ga - 0.963) <= 0.01
+    assert main(["datasets"]) == 0
+    listing = capsys.readouterr().out
+    assert [ln for ln in listing.splitlines() if ln.startswith("bgl-2k ")][0].rstrip().endswith("fetched")
