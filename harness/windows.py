@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 
-from harness.errors import ConfigError
+from harness.errors import ConfigError, DataError
 from harness.incidents import from_ns, times_ns
 
 
@@ -78,7 +78,8 @@ class WindowSet:
 # tumbling windows equals ``pd.Grouper(freq=size, origin="epoch")``. Empty windows
 # are not produced. Session and count windows run from their first event to just
 # after their last one: ``end = last event time + 1 microsecond`` (end exclusive,
-# like every window). Windows are ordered by (key, start).
+# like every window). Windows are ordered by (key, start). Session windows carry
+# one extra meta column, ``group`` (the session key).
 # ---------------------------------------------------------------------------
 
 _ONE_US = 1_000
@@ -186,12 +187,11 @@ def build_windows(events: pd.DataFrame, vocab_size: int, spec: WindowSpec | dict
 def _check_vocab(ev: np.ndarray, vocab_size: int) -> None:
     """Event ids must lie in [0, vocab_size)."""
     if len(ev) and (ev.min() < 0 or ev.max() >= vocab_size):
-        raise ValueError(f"event ids must lie in [0, {vocab_size}), got range [{ev.min()}, {ev.max()}]")
+        raise DataError(f"events.event: ids must lie in [0, {vocab_size}), got range [{ev.min()}, {ev.max()}]")
 
 
 def _assemble(
     key_codes: np.ndarray,
-    key_names: np.ndarray,
     win_key: np.ndarray,
     ev_idx: np.ndarray,
     events_ev: np.ndarray,
@@ -200,13 +200,16 @@ def _assemble(
     ts: np.ndarray,
     vocab_size: int,
     info: dict,
-    extra_meta: dict | None = None,
+    entity: tuple[np.ndarray, np.ndarray],
+    extra_meta: dict[str, tuple[np.ndarray, np.ndarray]] | None = None,
 ) -> WindowSet:
     """Turn (window key, event index) pairs sorted by window into a WindowSet.
 
     ``win_key`` is a per-pair secondary key (window number within the key code);
-    pairs must already be sorted by (key_codes, win_key, time). ``starts``/``ends``
-    None means first event time / last event time + 1 µs.
+    pairs must already be sorted by (key_codes, win_key, time). ``entity`` and each
+    ``extra_meta`` value are (unique names, per-pair codes): a window takes the name
+    of its first pair. ``starts``/``ends`` None means first event time / last event
+    time + 1 µs.
     """
     m = len(ev_idx)
     if m == 0:
@@ -228,11 +231,9 @@ def _assemble(
     n_win = len(first)
     offsets = np.r_[first, m].astype(np.int64)
     n_events = np.diff(offsets)
-    win_of_pair = np.repeat(np.arange(n_win, dtype=np.int64), n_events)
     values = events_ev[ev_idx].astype(np.int32, copy=False)
-    counts = sp.coo_matrix(
-        (np.ones(m, dtype=np.int32), (win_of_pair, values)), shape=(n_win, vocab_size)
-    ).tocsr()
+    # windows are contiguous runs of pairs: their sequences are the CSR rows before summing duplicates
+    counts = sp.csr_matrix((np.ones(m, dtype=np.int32), values.copy(), offsets.copy()), shape=(n_win, vocab_size))
     counts.sum_duplicates()
     if starts is None:
         start_ns = ts[ev_idx[first]]
@@ -242,21 +243,20 @@ def _assemble(
     meta = pd.DataFrame(
         {
             "id": np.arange(n_win, dtype=np.int64),
-            "entity": pd.array(key_names[first], dtype="str"),
+            "entity": pd.array(entity[0][entity[1][first]], dtype="str"),
             "start": from_ns(start_ns),
             "end": from_ns(end_ns),
             "n_events": n_events.astype(np.int64),
         }
     )
-    for name, per_pair in (extra_meta or {}).items():
-        meta[name] = pd.array(per_pair[first], dtype="str")
+    for name, (names, codes) in (extra_meta or {}).items():
+        meta[name] = pd.array(names[codes[first]], dtype="str")
     return WindowSet(meta, counts, values, offsets, vocab_size, info=info)
 
 
 def _entity_sorted(events: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Entity codes, entity names per event, ns times, and the (entity, time) stable order."""
-    ent = events["entity"].fillna("").astype(str).to_numpy(dtype=object)
-    codes, uniques = pd.factorize(ent, sort=True)
+    codes, uniques = pd.factorize(events["entity"].fillna("").astype("str"), sort=True)
     ts = times_ns(events["ts"])
     order = np.lexsort((ts, codes))
     return codes, np.asarray(uniques, dtype=object), ts, order
@@ -269,20 +269,20 @@ def session_windows(events: pd.DataFrame, vocab_size: int) -> WindowSet:
     """
     ev = events["event"].to_numpy()
     _check_vocab(ev, vocab_size)
-    grp = events["group"]
-    has = grp.notna().to_numpy() & (grp.fillna("").astype(str) != "").to_numpy()
+    grp = events["group"].astype("str")
+    has = (grp.notna() & (grp != "")).to_numpy()
     idx_keep = np.flatnonzero(has)
-    g = grp.to_numpy(dtype=object)[idx_keep].astype(str)
-    codes, uniques = pd.factorize(g, sort=True)
+    codes, uniques = pd.factorize(grp.iloc[idx_keep], sort=True)
     ts_all = times_ns(events["ts"])
     order = np.lexsort((ts_all[idx_keep], codes))
     ev_idx = idx_keep[order]
     codes_sorted = codes[order]
-    ent = events["entity"].fillna("").astype(str).to_numpy(dtype=object)
+    ent_codes, ent_names = pd.factorize(events["entity"].fillna("").astype("str"))
     info = {"kind": "session", "dropped_events": int(len(events) - len(idx_keep))}
     ws = _assemble(
-        codes_sorted, ent[ev_idx], np.zeros(len(ev_idx), np.int64), ev_idx, ev, None, None, ts_all, vocab_size, info,
-        extra_meta={"group": np.asarray(uniques, dtype=object)[codes_sorted]},
+        codes_sorted, np.zeros(len(ev_idx), np.int64), ev_idx, ev, None, None, ts_all, vocab_size, info,
+        entity=(np.asarray(ent_names, dtype=object), ent_codes[ev_idx]),
+        extra_meta={"group": (np.asarray(uniques, dtype=object), codes_sorted)},
     )
     return ws
 
@@ -316,14 +316,21 @@ def time_windows(
         within = np.arange(total, dtype=np.int64) - np.repeat(cum[:-1], reps)
         pos = np.repeat(np.arange(len(order), dtype=np.int64), reps)
         k = k_lo[pos] + within
-        # sort by (entity, k, time); positions in `order` already encode (entity, time)
-        o2 = np.lexsort((pos, k, codes[order][pos]))
+        # Pairs are generated in (entity, time) order; a stable sort on the combined
+        # (entity, k) key yields (entity, k, time) order.
+        k_min = int(k.min()) if total else 0
+        span = int(k.max()) - k_min + 1 if total else 1
+        pair_codes = codes[order][pos].astype(np.int64)
+        if (int(pair_codes.max()) + 1) * span < 2**62:
+            o2 = np.argsort(pair_codes * span + (k - k_min), kind="stable")
+        else:
+            o2 = np.lexsort((pos, k, pair_codes))
         k = k[o2]
         pair_ev = order[pos[o2]]
         pair_codes = codes[pair_ev]
     starts = k * d
     info = {"kind": "time", "size": size, "step": step}
-    return _assemble(pair_codes, names[pair_codes], k, pair_ev, ev, starts, starts + s, ts, vocab_size, info)
+    return _assemble(pair_codes, k, pair_ev, ev, starts, starts + s, ts, vocab_size, info, entity=(names, pair_codes))
 
 
 def count_windows(events: pd.DataFrame, vocab_size: int, n: int, step: int | None = None) -> WindowSet:
@@ -342,7 +349,8 @@ def count_windows(events: pd.DataFrame, vocab_size: int, n: int, step: int | Non
     c = codes[order]
     m = len(order)
     if m == 0:
-        return _assemble(c, names[c], c, order, ev, None, None, ts, vocab_size, {"kind": "count", "n": n, "step": step})
+        info = {"kind": "count", "n": n, "step": step}
+        return _assemble(c, c, order, ev, None, None, ts, vocab_size, info, entity=(names, c))
     first = np.flatnonzero(np.r_[True, c[1:] != c[:-1]])
     size_per_ent = np.diff(np.r_[first, m])
     grp_start = np.repeat(first, size_per_ent)
@@ -358,11 +366,13 @@ def count_windows(events: pd.DataFrame, vocab_size: int, n: int, step: int | Non
     within = np.arange(total, dtype=np.int64) - np.repeat(cum[:-1], reps)
     pos = np.repeat(np.arange(m, dtype=np.int64), reps)
     k = k_lo[pos] + within
-    o2 = np.lexsort((pos, k, c[pos]))
+    k_span = int(k.max()) + 1 if total else 1
+    o2 = np.argsort(c[pos].astype(np.int64) * k_span + k, kind="stable")  # (entity, k, time) order; k_span <= m
     k, pos = k[o2], pos[o2]
     pair_ev = order[pos]
     info = {"kind": "count", "n": n, "step": step}
-    return _assemble(c[pos], names[c[pos]], k, pair_ev, ev, None, None, ts, vocab_size, info)
+    pair_codes = c[pos]
+    return _assemble(pair_codes, k, pair_ev, ev, None, None, ts, vocab_size, info, entity=(names, pair_codes))
 
 
 # ---------------------------------------------------------------------------
@@ -396,6 +406,7 @@ def _overlaps(w_ent: np.ndarray, ws: np.ndarray, we: np.ndarray, incidents: pd.D
     i_s, i_e = times_ns(incidents["start"]), times_ns(incidents["end"])
 
     def hit(sel_w: np.ndarray, sel_i: np.ndarray) -> np.ndarray:
+        """Overlap of the selected windows with the selected incidents (prefix max of ends)."""
         o = np.argsort(i_s[sel_i], kind="stable")
         s_sorted = i_s[sel_i][o]
         e_cummax = np.maximum.accumulate(i_e[sel_i][o])
@@ -482,6 +493,7 @@ def _failure_ahead(w_ent: np.ndarray, we: np.ndarray, failures: pd.DataFrame, h:
     f_s = times_ns(failures["start"])
 
     def hit(sel_w: np.ndarray, starts: np.ndarray) -> np.ndarray:
+        """Does any of the given failure starts fall in [end, end + horizon) of the selected windows?"""
         starts = np.sort(starts)
         lo = np.searchsorted(starts, we[sel_w], side="left")
         hi = np.searchsorted(starts, we[sel_w] + h, side="left")

@@ -61,3 +61,34 @@ def bgl_events(loghub_dir: Path):
             "tag": raw["label"].where(raw["label"] != entry["tag"]["normal"], "").astype("str"),
         }
     )
+
+
+def windows_from_counts(counts, labels=None):
+    """A WindowSet (one entity, hourly windows) whose count matrix is ``counts``; sequences follow the counts."""
+    import numpy as np
+    import pandas as pd
+    import scipy.sparse as sp
+
+    from harness.windows import WindowSet
+
+    m = sp.csr_matrix(counts, dtype=np.int64)
+    n = m.shape[0]
+    lengths = np.asarray(m.sum(axis=1)).ravel().astype(np.int64)
+    offsets = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    coo = m.tocoo()
+    order = np.lexsort((coo.col, coo.row))
+    values = np.repeat(coo.col[order], coo.data[order]).astype(np.int32)
+    start = pd.Timestamp("2024-01-01", tz="UTC") + pd.to_timedelta(np.arange(n), unit="h")
+    meta = pd.DataFrame(
+        {"id": np.arange(n, dtype=np.int64), "entity": "node-1", "start": start,
+         "end": start + pd.Timedelta(hours=1), "n_events": lengths}
+    )
+    lab = None if labels is None else np.asarray(labels, dtype=np.int8)
+    return WindowSet(meta=meta, counts=m, seq_values=values, seq_offsets=offsets, vocab_size=m.shape[1], labels=lab)
+
+
+@pytest.fixture()
+def make_windows():
+    """Builds a WindowSet from a count matrix (and optional labels), for detector tests."""
+    return windows_from_counts
