@@ -122,14 +122,35 @@ def cmd_parse_score(args: argparse.Namespace) -> int:
 
 def cmd_simulate(args: argparse.Namespace) -> int:
     """Write a simulated fleet's logs and incidents."""
-    from harness.simulate import generate, load_scenario
+    from harness.simulate import cli_simulate
 
-    scenario = load_scenario(args.config)
-    if args.seed is not None:
-        scenario = scenario.model_copy(update={"seed": args.seed})
-    res = generate(scenario, Path(args.out), progress=True)
-    print(f"simulated fleet written to {args.out}")
-    print(textwrap.indent(str(res), "  "))
+    return cli_simulate(args.config, args.out, seed=args.seed, progress=True)
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    """Run or resume an experiment grid."""
+    from harness.experiment import load_experiment
+    from harness.registry import home_dir
+    from harness.runs import run_experiment
+
+    exp = load_experiment(Path(args.experiment), output=args.out)
+    counts = run_experiment(exp, home_dir(), progress=True, mirror=Path(args.mirror) if args.mirror else None,
+                            track=not args.no_track)
+    print(f"{exp.name}: {counts['finished']} finished, {counts['failed']} failed, "
+          f"{counts['skipped']} already done; results in {exp.output}")
+    return 1 if counts["failed"] else 0
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    """Write tables and plots from recorded runs."""
+    from harness.experiment import load_experiment
+    from harness.report import to_text, write_report
+
+    exp = load_experiment(Path(args.experiment), output=args.out)
+    paths = write_report(exp.output, exp.name)
+    print(to_text(paths["table"]))
+    print(f"\nreport: {paths['markdown']}\n        {paths['html']}\n        {paths['csv']}")
+    print(f"tracking: mlflow ui --backend-store-uri sqlite:///{(exp.output / 'mlflow.db').resolve()}")
     return 0
 
 
@@ -184,6 +205,18 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("config", metavar="CONFIG", nargs="?", help="scenario YAML (default: built-in scenario)")
     sp.add_argument("--out", required=True, metavar="DIR")
     sp.add_argument("--seed", type=int)
+
+    sp = verb("run", cmd_run, "run or resume an experiment grid (every run recorded)",
+              "logtrial run reports/bgl-2k/experiment.yaml")
+    sp.add_argument("experiment", metavar="EXPERIMENT.yaml")
+    sp.add_argument("--out", metavar="DIR", help="output folder (default: the file's `output`)")
+    sp.add_argument("--mirror", metavar="DIR")
+    sp.add_argument("--no-track", action="store_true", help="do not record runs in MLflow")
+
+    sp = verb("report", cmd_report, "comparison tables and plots from recorded runs",
+              "logtrial report reports/bgl-2k/experiment.yaml")
+    sp.add_argument("experiment", metavar="EXPERIMENT.yaml")
+    sp.add_argument("--out", metavar="DIR", help="output folder holding the runs (default: the file's `output`)")
 
     from harness.demo import add_demo_parser
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any, Mapping, Sequence
 
 import numpy as np
@@ -66,17 +67,26 @@ def score_against_truth(events_path, templates_path, truth_path, truth) -> dict:
 
     events = pd.read_parquet(events_path, columns=["line", "event"])
     templates = pd.read_csv(templates_path, keep_default_na=False)["template"].tolist()
-    try:
-        gt = pd.read_csv(truth_path, dtype=str, keep_default_na=False)
-    except (OSError, pd.errors.ParserError) as exc:
-        raise DataError(f"{truth_path}: cannot read ground-truth templates: {exc}") from None
-    for col in (truth.id, truth.template):
-        if col not in gt.columns:
-            raise DataError(f"{truth_path}: line 1: expected a column {col!r}, found {list(gt.columns)}")
-    if "LineId" in gt.columns:
-        gt.index = pd.to_numeric(gt["LineId"]).astype(np.int64)
-    else:
+    truth_path = Path(truth_path)
+    if truth_path.suffix == ".npy":
+        # Per-line template ids (line i+1 -> ids[i]) plus a template list with `id` and `template`.
+        ids = np.load(truth_path, allow_pickle=False)
+        cat_path = truth_path.parent / (truth.templates or "templates.csv")
+        cat = pd.read_csv(cat_path, keep_default_na=False)
+        gt = pd.DataFrame({truth.id: ids, truth.template: cat.set_index("id")["template"].reindex(ids).to_numpy()})
         gt.index = np.arange(1, len(gt) + 1, dtype=np.int64)
+    else:
+        try:
+            gt = pd.read_csv(truth_path, dtype=str, keep_default_na=False)
+        except (OSError, pd.errors.ParserError) as exc:
+            raise DataError(f"{truth_path}: cannot read ground-truth templates: {exc}") from None
+        for col in (truth.id, truth.template):
+            if col not in gt.columns:
+                raise DataError(f"{truth_path}: line 1: expected a column {col!r}, found {list(gt.columns)}")
+        if "LineId" in gt.columns:
+            gt.index = pd.to_numeric(gt["LineId"]).astype(np.int64)
+        else:
+            gt.index = np.arange(1, len(gt) + 1, dtype=np.int64)
     common = events[events["line"].isin(gt.index)]
     if common.empty:
         raise DataError(f"{truth_path}: no ground-truth row matches an ingested line number")

@@ -141,6 +141,22 @@ class Labels(_Strict):
     label: str | None = None
     anomalous: str | None = None
     parser: Literal["csv", "application_list", "id_list"] = "csv"
+    gap: str = "1h"
+    failure_tags: list[str] | None = None
+    tag_kinds: dict[str, Literal["failure", "other"]] = Field(default_factory=dict)
+
+    @field_validator("gap")
+    @classmethod
+    def _duration(cls, v: str) -> str:
+        import pandas as pd
+
+        try:
+            td = pd.Timedelta(v)
+        except (ValueError, TypeError):
+            raise ValueError(f"expected a duration such as '1h', got {v!r}") from None
+        if td < pd.Timedelta(0):
+            raise ValueError(f"must not be negative, got {v!r}")
+        return v
 
     @model_validator(mode="after")
     def _file_when_needed(self) -> "Labels":
@@ -167,9 +183,10 @@ class Miner(_Strict):
 
 
 class Truth(_Strict):
-    """Ground-truth template file for parse-score (CSV with one row per line)."""
+    """Ground-truth templates for parse-score: a CSV with one row per line, or per-line ids (.npy) plus a template list."""
 
     file: str
+    templates: str | None = None
     id: str = "EventId"
     template: str = "EventTemplate"
     content: str = "Content"
