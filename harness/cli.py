@@ -144,11 +144,12 @@ def cmd_run(args: argparse.Namespace) -> int:
 def cmd_report(args: argparse.Namespace) -> int:
     """Write tables and plots from recorded runs."""
     from harness.experiment import load_experiment
-    from harness.report import to_text, write_report
+    from harness.experiment import experiment_order
+    from harness.report import compact, to_text, write_report
 
     exp = load_experiment(Path(args.experiment), output=args.out)
-    paths = write_report(exp.output, exp.name)
-    print(to_text(paths["table"]))
+    paths = write_report(exp.output, exp.name, *experiment_order(exp))
+    print(to_text(compact(paths["table"])))
     print(f"\nreport: {paths['markdown']}\n        {paths['html']}\n        {paths['csv']}")
     print(f"tracking: mlflow ui --backend-store-uri sqlite:///{(exp.output / 'mlflow.db').resolve()}")
     return 0

@@ -6,42 +6,55 @@ import argparse
 import time
 from pathlib import Path
 
+from harness.registry import REPO_ROOT
 
-def run_demo(out: Path, seed: int = 7, quick: bool = False) -> int:
-    """Simulate the fleet, ingest it and score the template miner against the generator's truth."""
-    from harness.ingest import ingest_files
-    from harness.parse_score import grouping_accuracy
-    from harness.registry import get_entry, load_registry
-    from harness.simulate import generate, load_scenario
+DEMO_EXPERIMENT = REPO_ROOT / "reports" / "demo" / "experiment.yaml"
+
+
+def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True) -> int:
+    """Simulate the fleet, ingest it, run the demo grid, write the report and print the headline table."""
+    from harness.experiment import experiment_order, load_experiment
+    from harness.ingest import entry_files, ingest_files
+    from harness.parse_score import score_against_truth
+    from harness.registry import get_entry, home_dir, load_registry
+    from harness.report import compact, to_text, write_report
+    from harness.runs import run_experiment
 
     t0 = time.time()
+    home = home_dir()
+    exp = load_experiment(experiment, output=out)
     entry = get_entry("radar-relay", load_registry())
-    scenario = load_scenario({**(entry.generator or {}), "seed": seed, **({"nodes": 8, "days": 20} if quick else {})})
-    out.mkdir(parents=True, exist_ok=True)
-    print(f"[1/3] simulating {scenario.nodes} relay nodes over {scenario.days} days -> {out / 'sim'}")
-    sim = generate(scenario, out / "sim", progress=True)
-    print(f"[2/3] ingesting {sim.log}")
-    res = ingest_files("radar-relay", [sim.log], entry.format, entry.miner, out / "tables", progress=True)
+    print("[1/4] simulating the radar-relay fleet (cached by scenario hash)", flush=True)
+    files = entry_files(entry, home, progress=True)
+    print(f"      {files[0]}")
+    print("[2/4] ingesting and checking the template miner against the generator's template ids", flush=True)
+    res = ingest_files(entry.name, files, entry.format, entry.miner, home / "tables", progress=True)
+    score = score_against_truth(res.events, res.templates, files[0].parent / entry.truth.file, entry.truth)
     print(f"      {res.manifest['rows']:,} events, {res.manifest['templates']} templates, "
-          f"{res.manifest['quarantined']} quarantined")
-    print("[3/3] scoring the template miner against the generator's own template ids")
-    import pandas as pd
-
-    events = pd.read_parquet(res.events, columns=["line", "event"])
-    truth = sim.line_templates()
-    ga = grouping_accuracy(truth[events["line"].to_numpy() - 1], events["event"].to_numpy())
-    print(f"      grouping accuracy {ga:.4f}")
-    print(f"done in {time.time() - t0:.0f} s; outputs under {out}")
-    return 0
+          f"{res.manifest['quarantined']} quarantined, grouping accuracy {score['grouping_accuracy']:.4f}")
+    print(f"[3/4] running {len(exp.runs)} runs: {len(experiment_order(exp)[0])} detectors x "
+          f"{len(experiment_order(exp)[1])} noise levels x seeds", flush=True)
+    counts = run_experiment(exp, home, progress=True, track=track)
+    print("[4/4] writing the report", flush=True)
+    paths = write_report(exp.output, exp.name, *experiment_order(exp))
+    print()
+    print(to_text(compact(paths["table"])))
+    print(f"\n{counts['finished']} runs finished, {counts['failed']} failed, {counts['skipped']} reused from before; "
+          f"{time.time() - t0:.0f} s")
+    print(f"report: {paths['markdown']}  (also {paths['html'].name}, results.csv, robustness.png, lead_times.png, "
+          f"pr_curves.png)")
+    print(f"tracking: mlflow ui --backend-store-uri sqlite:///{(exp.output / 'mlflow.db').resolve()}")
+    return 1 if counts["failed"] else 0
 
 
 def add_demo_parser(verb) -> None:
     """Register the `demo` verb on the command line."""
 
     def cmd(args: argparse.Namespace) -> int:
-        return run_demo(Path(args.out), seed=args.seed, quick=args.quick)
+        return run_demo(Path(args.out), Path(args.experiment), track=not args.no_track)
 
     sp = verb("demo", cmd, "the whole job on the built-in radar-relay scenario, no download", "logtrial demo")
     sp.add_argument("--out", default="logtrial-out/demo", metavar="DIR", help="output folder (default: %(default)s)")
-    sp.add_argument("--seed", type=int, default=7)
-    sp.add_argument("--quick", action="store_true", help="a small fleet, for a first look in seconds")
+    sp.add_argument("--experiment", default=str(DEMO_EXPERIMENT), metavar="YAML",
+                    help="experiment file to run (default: the committed demo grid)")
+    sp.add_argument("--no-track", action="store_true", help="do not record runs in MLflow")

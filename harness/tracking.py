@@ -1,0 +1,90 @@
+"""Tracking: record every run in MLflow (a local SQLite store inside the experiment's output folder)."""
+
+from __future__ import annotations
+
+import json
+import logging
+import math
+import os
+import tempfile
+import warnings
+from pathlib import Path
+
+TRACKING_DB = "mlflow.db"
+
+
+def tracking_uri(output: Path) -> str:
+    """The MLflow tracking URI of an experiment's output folder."""
+    return f"sqlite:///{(Path(output) / TRACKING_DB).resolve()}"
+
+
+def _flatten(prefix: str, value, out: dict) -> None:
+    if isinstance(value, dict):
+        for k, v in value.items():
+            _flatten(f"{prefix}.{k}" if prefix else str(k), v, out)
+    else:
+        out[prefix] = value
+
+
+class Tracker:
+    """Logs run records to MLflow exactly once per config hash."""
+
+    def __init__(self, output: Path, experiment_name: str):
+        os.environ.setdefault("MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR", "false")
+        logging.getLogger("mlflow").setLevel(logging.ERROR)
+        logging.getLogger("alembic").setLevel(logging.ERROR)
+        import mlflow
+        from mlflow.tracking import MlflowClient
+
+        Path(output).mkdir(parents=True, exist_ok=True)
+        self.uri = tracking_uri(output)
+        self.artifacts = (Path(output) / "mlruns").resolve().as_uri()
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            self.client = MlflowClient(tracking_uri=self.uri)
+            exp = self.client.get_experiment_by_name(experiment_name)
+            self.experiment_id = exp.experiment_id if exp else self.client.create_experiment(
+                experiment_name, artifact_location=self.artifacts)
+        self._mlflow = mlflow
+
+    def existing(self, run_id: str) -> list[str]:
+        """MLflow run ids already recorded for a config hash."""
+        found = self.client.search_runs([self.experiment_id], filter_string=f"tags.config_hash = '{run_id}'")
+        return [r.info.run_id for r in found]
+
+    def log(self, record: dict, store) -> None:
+        """Record one run (params, metrics, config hash tag, artifacts) unless already recorded."""
+        from mlflow.entities import Metric, Param, RunTag
+
+        for old in self.existing(record["run_id"]):
+            # A finished record replaces an earlier failed attempt of the same config.
+            self.client.delete_run(old)
+        cfg = record["config"]
+        name = f"{cfg['detector'].get('label') or cfg['detector']['name']} | {cfg['noise'].get('name', 'clean')} | seed {cfg['seed']}"
+        run = self.client.create_run(self.experiment_id, run_name=name, tags={"config_hash": record["run_id"]})
+        rid = run.info.run_id
+        flat: dict = {}
+        _flatten("", {k: v for k, v in cfg.items()}, flat)
+        params = [Param(k[:250], json.dumps(v) if not isinstance(v, str) else v[:6000]) for k, v in sorted(flat.items())]
+        tags = [RunTag("status", record["status"]), RunTag("dataset", cfg["dataset"]),
+                RunTag("detector", cfg["detector"]["name"]), RunTag("noise", cfg["noise"].get("name", "clean"))]
+        metrics = []
+        if record["status"] == "finished":
+            vals: dict = {}
+            _flatten("", record["metrics"], vals)
+            _flatten("ci", record.get("intervals", {}), vals)
+            vals["threshold"] = record["threshold"]["value"]
+            for k, v in vals.items():
+                if isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(float(v)):
+                    metrics.append(Metric(k.replace("[", "_").replace("]", ""), float(v), 0, 0))
+        else:
+            tags.append(RunTag("error", record.get("error", "")[:4000]))
+        self.client.log_batch(rid, metrics=metrics, params=params, tags=tags)
+        with tempfile.TemporaryDirectory() as tmp:
+            rec = Path(tmp) / "record.json"
+            rec.write_text(json.dumps(record, indent=1, sort_keys=True, default=str))
+            self.client.log_artifact(rid, str(rec))
+            scores = store.path(record["run_id"], ".scores.parquet")
+            if scores.is_file():
+                self.client.log_artifact(rid, str(scores))
+        self.client.set_terminated(rid, status="FINISHED" if record["status"] == "finished" else "FAILED")
