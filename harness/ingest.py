@@ -311,14 +311,26 @@ def _write_table(
                     counters.quarantined += len(bad)
                     if len(df):
                         df["event"] = miner.add_many(df["content"].tolist()).astype(np.int32)
-                        table = pa.Table.from_pandas(df[[c.name for c in EVENT_SCHEMA]], schema=EVENT_SCHEMA,
-                                                     preserve_index=False)
-                        writer.write_table(table)
+                        writer.write_table(_arrow_chunk(df))
                         counters.rows += len(df)
                     bar.update(sum(len(s) + 1 for s in lines))
         finally:
             writer.close()
             bar.close()
+
+
+def _arrow_chunk(df: pd.DataFrame) -> pa.Table:
+    """One chunk of the event table as Arrow, column by column in the table's schema."""
+    ts = df["ts"].dt.tz_convert("UTC").dt.tz_localize(None).to_numpy(dtype="datetime64[us]")
+    cols = [
+        pa.array(df["line"].to_numpy(dtype=np.int64)),
+        pa.array(ts, type=pa.timestamp("us")).cast(pa.timestamp("us", tz="UTC")),
+        pa.array(df["entity"].astype(object).to_numpy(), type=pa.string()),
+        pa.array(df["group"].astype(object).where(df["group"].notna(), None).to_numpy(), type=pa.string()),
+        pa.array(df["event"].to_numpy(dtype=np.int32)),
+        pa.array(df["tag"].astype(object).to_numpy(), type=pa.string()),
+    ]
+    return pa.Table.from_arrays(cols, schema=EVENT_SCHEMA)
 
 
 def read_events(path: Path) -> pd.DataFrame:

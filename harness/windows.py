@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -116,7 +117,9 @@ def parse_duration(value: object, field_name: str) -> pd.Timedelta:
         if isinstance(value, (int, float, np.integer, np.floating)):
             td = pd.Timedelta(seconds=float(value))
         else:
-            td = pd.Timedelta(value)
+            # "2d" means two days; pandas is retiring the lower-case unit, so spell it "D".
+            text = re.sub(r"(?<=\d)\s*d\b", "D", value) if isinstance(value, str) else value
+            td = pd.Timedelta(text)
     except (ValueError, TypeError) as exc:
         raise ConfigError(f"{field_name}: expected a duration such as '1h', got {value!r}") from exc
     if pd.isna(td):
