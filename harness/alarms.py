@@ -12,12 +12,14 @@ Rules (one set for every detector)
   (also with a zero cool-down, which otherwise merges nothing).
 - **Matching** (same entity, or any entity for an incident whose entity is ""
   or "*", i.e. fleet-wide): an alarm *predicts* failure F when its time lies in
-  ``[F.start - horizon, F.start)``, *detects* F when in ``[F.start, F.end]``.
-  With no horizon (the detect task) nothing is predicted, only detected.
+  ``[F.start - horizon, F.start)``, *detects* F when the window of its first
+  alert overlaps F (window ``[w_start, time)`` meets ``[F.start, F.end]``), so a
+  short failure inside one window is detected by that window's alert. With no
+  horizon (the detect task) nothing is predicted, only detected.
 - **Alarm kinds**: ``predicted`` or ``detected`` (true alarms; an alarm that
   both predicts one failure and detects another is ``predicted``), else
-  ``nonfailure`` when it lies in ``[O.start - horizon, O.end]`` of a non-failure
-  anomaly O, else ``false``. ``matched_id`` is the matched incident with the
+  ``nonfailure`` when its time is at or after ``O.start - horizon`` and its first
+  window starts no later than ``O.end`` for a non-failure anomaly O, else ``false``. ``matched_id`` is the matched incident with the
   earliest start.
 - **False alarms per predicted failure** = (false + non-failure alarms) /
   predicted failures: a non-failure alarm still pages an operator for no
@@ -47,7 +49,7 @@ from harness.metrics import MetricError, summarise_weighted
 from harness.windows import parse_duration
 
 FLEET_WIDE = ("", "*")
-ALARM_COLUMNS = ["entity", "time", "last_time", "n_alerts", "matched_id", "match"]
+ALARM_COLUMNS = ["entity", "time", "last_time", "n_alerts", "window_start", "matched_id", "match"]
 FAILURE_COLUMNS = ["id", "entity", "start", "end", "predicted", "detected", "lead_time"]
 _WEEK_NS = pd.Timedelta(weeks=1).value
 
@@ -70,8 +72,13 @@ def check_horizon(horizon: object, where: str = "task.horizon") -> pd.Timedelta:
     return h
 
 
-def alert_arrays(meta: pd.DataFrame, scores: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray]:
-    """Entity names and alert times (ns, window end) of the windows whose score reaches the threshold."""
+def alert_arrays(
+    meta: pd.DataFrame, scores: np.ndarray, threshold: float, with_start: bool = False
+) -> tuple[np.ndarray, ...]:
+    """Entity names and alert times (ns, window end) of the windows whose score reaches the threshold.
+
+    With ``with_start`` the alerting windows' start times (ns) come third.
+    """
     s = np.asarray(scores, dtype=np.float64)
     if s.ndim != 1 or len(s) != len(meta):
         raise DataError(f"scores: expected one score per window ({len(meta)}), got shape {s.shape}")
@@ -79,11 +86,19 @@ def alert_arrays(meta: pd.DataFrame, scores: np.ndarray, threshold: float) -> tu
         raise DataError(f"scores: {int(np.isnan(s).sum())} windows have a NaN score; detectors must score every window")
     hit = s >= threshold
     ent = meta["entity"].fillna("").astype(str).to_numpy(dtype=object)
+    if with_start:
+        return ent[hit], times_ns(meta["end"])[hit], times_ns(meta["start"])[hit]
     return ent[hit], times_ns(meta["end"])[hit]
 
 
-def merge_alerts(entity: np.ndarray, times: np.ndarray, cooldown: pd.Timedelta) -> pd.DataFrame:
-    """Alarms (entity, time, last_time, n_alerts) from alerts, merging chains closer than the cool-down."""
+def merge_alerts(
+    entity: np.ndarray, times: np.ndarray, cooldown: pd.Timedelta, starts: np.ndarray | None = None
+) -> pd.DataFrame:
+    """Alarms (entity, time, last_time, n_alerts, window_start) from alerts, merging chains closer than the cool-down.
+
+    ``starts`` are the alerting windows' start times (ns); without them an alert's
+    window is taken to be the instant of its time.
+    """
     cd = check_cooldown(cooldown).value
     ent = np.asarray(entity, dtype=object)
     t = np.asarray(times, dtype=np.int64)
@@ -94,11 +109,13 @@ def merge_alerts(entity: np.ndarray, times: np.ndarray, cooldown: pd.Timedelta) 
                 "time": from_ns(np.zeros(0, np.int64)),
                 "last_time": from_ns(np.zeros(0, np.int64)),
                 "n_alerts": np.zeros(0, np.int64),
+                "window_start": from_ns(np.zeros(0, np.int64)),
             }
         )
+    w0 = t if starts is None else np.asarray(starts, dtype=np.int64)
     codes, names = pd.factorize(ent, sort=True)
     order = np.lexsort((t, codes))
-    c, ts = codes[order], t[order]
+    c, ts, ws = codes[order], t[order], w0[order]
     gap = np.diff(ts)
     new = np.r_[True, (c[1:] != c[:-1]) | ((gap >= cd) & (gap > 0))]
     first = np.flatnonzero(new)
@@ -109,6 +126,7 @@ def merge_alerts(entity: np.ndarray, times: np.ndarray, cooldown: pd.Timedelta) 
             "time": from_ns(ts[first]),
             "last_time": from_ns(ts[last]),
             "n_alerts": (last - first + 1).astype(np.int64),
+            "window_start": from_ns(ws[first]),
         }
     )
 
@@ -186,12 +204,14 @@ def match_alarms(
     h = check_horizon(horizon).value
     inc = _incident_arrays(incidents)
     t = times_ns(alarms["time"]) if len(alarms) else np.zeros(0, np.int64)
+    w = times_ns(alarms["window_start"]) if "window_start" in alarms and len(alarms) else t
     a_idx, i_idx = _pairs(alarms["entity"].fillna("").astype(str).to_numpy(dtype=object), inc["entity"])
-    ta, s, e = t[a_idx], inc["start"][i_idx], inc["end"][i_idx]
+    ta, wa, s, e = t[a_idx], w[a_idx], inc["start"][i_idx], inc["end"][i_idx]
     is_fail = inc["kind"][i_idx] == "failure"
     pred = is_fail & (ta >= s - h) & (ta < s)
-    det = is_fail & (ta >= s) & (ta <= e)
-    nonf = ~is_fail & (ta >= s - h) & (ta <= e)
+    # Detected: the first alert's window [w, t) meets [s, e] (an instant alert: t in [s, e]).
+    det = is_fail & (wa <= e) & ((ta > s) | ((ta == s) & (wa == ta)))
+    nonf = ~is_fail & (ta >= s - h) & (wa <= e)
     rank = np.where(pred, 0, np.where(det, 1, np.where(nonf, 2, 3)))
     hit = rank < 3
     pairs = pd.DataFrame({"a": a_idx[hit], "rank": rank[hit], "start": s[hit], "i": i_idx[hit]})
@@ -268,6 +288,13 @@ class IncidentReport:
                 if paged
                 else "no failure was predicted and no alarm was raised in vain (0/0)"
             )
+        if s["predicted"] + s["detected_only"] == 0:
+            paged = s["false_alarms"] + s["nonfailure_alarms"]
+            why["false_alarms_per_caught_failure"] = (
+                f"{paged} alarms matched no failure and no failure was predicted or detected (infinite)"
+                if paged
+                else "no failure was caught and no alarm was raised in vain (0/0)"
+            )
         return why
 
 
@@ -306,8 +333,8 @@ def incident_metrics(
     if not hi > lo:
         raise MetricError(f"evaluated span must have positive length, got {lo} .. {hi}")
 
-    ent, t = alert_arrays(windows_meta, scores, threshold)
-    alarms = merge_alerts(ent, t, cd)
+    ent, t, w = alert_arrays(windows_meta, scores, threshold, with_start=True)
+    alarms = merge_alerts(ent, t, cd, w)
     alarms, per_inc = match_alarms(alarms, incidents, h)
 
     inc = _incident_arrays(incidents)

@@ -249,6 +249,11 @@ def summarise_weighted(report: "IncidentReport", wf: np.ndarray, wa: np.ndarray)
             paged_for_nothing / np.where(n_pred > 0, n_pred, 1),
             np.where(paged_for_nothing > 0, np.inf, np.nan),
         )
+        fa_per_caught = np.where(
+            n_any > 0,
+            paged_for_nothing / np.where(n_any > 0, n_any, 1),
+            np.where(paged_for_nothing > 0, np.inf, np.nan),
+        )
     weeks = report.span_weeks
     alarms = false_a + nonf_a + true_a
     out: dict[str, np.ndarray] = {
@@ -262,6 +267,7 @@ def summarise_weighted(report: "IncidentReport", wf: np.ndarray, wa: np.ndarray)
         "false_alarms": false_a,
         "nonfailure_alarms": nonf_a,
         "false_alarms_per_predicted_failure": fa_per,
+        "false_alarms_per_caught_failure": fa_per_caught,
         "alarms_per_week_per_100_entities": alarms / weeks / (report.n_entities / 100.0),
         "lead_time_median_h": _weighted_median(lead_h[pred], wf[:, pred]),
     }
@@ -411,6 +417,7 @@ HEADLINE = (
     "recall_predicted",
     "recall_detected_or_predicted",
     "false_alarms_per_predicted_failure",
+    "false_alarms_per_caught_failure",
     "alarms_per_week_per_100_entities",
     "lead_time_median_h",
     "share_lead_ge_1h",

@@ -41,11 +41,9 @@ def template_match_share(
     truth_ids: Sequence,
     pred_ids: Sequence,
 ) -> float:
-    """Return the share of true templates found as exactly one predicted group with the same text.
-
-    Line i has true template `truth_templates[truth_ids[i]]` and predicted
-    template `predicted_templates[pred_ids[i]]` (lists indexed by id, or dicts).
-    """
+    """Return the share of true templates recovered as exactly one predicted group with the same text."""
+    # line i has true template truth_templates[truth_ids[i]] and predicted template
+    # predicted_templates[pred_ids[i]] (lists indexed by id, or dicts); whitespace is normalised
     if len(truth_ids) == 0:
         return float("nan")
     truth_arr = np.asarray(truth_ids, dtype=object)

@@ -23,6 +23,15 @@ HEADLINE = [
     ("alarms_per_week_per_100_entities", "alarms / week / 100 nodes", False),
     ("lead_time_median_h", "median lead (h)", True),
 ]
+# For the detect task nothing is predicted ahead: count failures caught during them instead.
+HEADLINE_DETECT = [
+    ("auprc", "AUPRC", True),
+    ("auroc", "AUROC", True),
+    ("f1", "F1", True),
+    ("recall_detected_or_predicted", "failures caught", True),
+    ("false_alarms_per_caught_failure", "false alarms / caught failure", False),
+    ("alarms_per_week_per_100_entities", "alarms / week / 100 nodes", False),
+]
 CURVES = [("auprc", "AUPRC"), ("recall_predicted", "share of failures predicted"),
           ("false_alarms_per_predicted_failure", "false alarms per predicted failure")]
 
@@ -80,7 +89,8 @@ def _cell(row: pd.Series, key: str) -> str:
 def headline_table(summary: pd.DataFrame) -> pd.DataFrame:
     """The comparison table a person reads: one row per detector and noise level."""
     out = pd.DataFrame({"dataset": summary["dataset"], "detector": summary["detector"], "noise": summary["noise"]})
-    for key, title, _ in HEADLINE:
+    detect = summary["task"].astype(str).str.contains("name=detect").all()
+    for key, title, _ in (HEADLINE_DETECT if detect else HEADLINE):
         if key in summary.columns:
             out[title] = [_cell(r, key) for _, r in summary.iterrows()]
     return out
@@ -130,7 +140,11 @@ def robustness_figure(summary: pd.DataFrame):
     import matplotlib.pyplot as plt
 
     xs, xlabel = _noise_axis(summary)
-    present = [(k, t) for k, t in CURVES if k in summary.columns]
+    curves = CURVES
+    if summary["task"].astype(str).str.contains("name=detect").all():
+        curves = [("auprc", "AUPRC"), ("recall_detected_or_predicted", "share of failures caught"),
+                  ("false_alarms_per_caught_failure", "false alarms per caught failure")]
+    present = [(k, t) for k, t in curves if k in summary.columns]
     fig, axes = plt.subplots(1, len(present), figsize=(5.2 * len(present), 4.2), squeeze=False)
     colours = plt.get_cmap("tab20").colors
     for ax, (key, title) in zip(axes[0], present):
@@ -142,7 +156,7 @@ def robustness_figure(summary: pd.DataFrame):
                 lo = g[f"{key}_low"].replace([np.inf, -np.inf], np.nan)
                 hi = g[f"{key}_high"].replace([np.inf, -np.inf], np.nan)
                 ax.fill_between(g["x"], lo, hi, alpha=0.07, color=line.get_color())
-        if key == "false_alarms_per_predicted_failure":
+        if key.startswith("false_alarms_per"):
             ax.set_yscale("log")
         ax.set_title(title)
         ax.set_xlabel(xlabel)

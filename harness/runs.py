@@ -15,7 +15,7 @@ from typing import Callable, Iterable
 import numpy as np
 import pandas as pd
 
-from harness.errors import DataError
+from harness.errors import ConfigError, DataError
 from harness.experiment import Experiment, RunConfig, describe_failure
 
 RESULT_VERSION = 1
@@ -115,10 +115,10 @@ class Runner:
         self.home = home
         self.mirror = mirror
         self.progress = progress
-        self.store = RunStore(experiment.output)
         self._datasets: dict[str, DatasetData] = {}
         self._prepared: dict[str, Prepared] = {}
         self._fits: dict[str, tuple[np.ndarray, np.ndarray, dict]] = {}
+        self._last_scores: dict[str, pd.DataFrame] = {}
 
     # ----- shared inputs ------------------------------------------------------------------
     def dataset(self, name: str) -> DatasetData:
@@ -226,7 +226,7 @@ class Runner:
         from harness.metrics import window_metrics_safe
 
         as_reported = window_metrics_safe(rep_test, test_scores, choice.threshold)
-        self.store.write_scores(run.run_id, pd.DataFrame({
+        self._last_scores[run.run_id] = (pd.DataFrame({
             "window": np.r_[split.val, split.test].astype(np.int64),
             "part": np.r_[np.full(len(split.val), "val"), np.full(len(split.test), "test")],
             "score": np.r_[val_scores, test_scores].astype(np.float64),
@@ -254,6 +254,34 @@ class Runner:
         }
 
 
+    def safe_execute(self, run: RunConfig) -> dict:
+        """Run one config; a failure becomes a `failed` record with its traceback instead of an exception."""
+        try:
+            return self.execute(run)
+        except Exception as exc:  # noqa: BLE001 - a failing run is recorded and the grid goes on
+            return {
+                "run_id": run.run_id, "status": "failed", "config": run.canonical(), "experiment": self.exp.name,
+                "error": describe_failure(exc), "traceback": traceback.format_exc(),
+            }
+
+    def execute_group(self, runs: list[RunConfig]) -> list[tuple[dict, pd.DataFrame | None]]:
+        """Run several configs in order (sharing data and fits); records with their scores, store untouched."""
+        out = []
+        for run in runs:
+            record = self.safe_execute(run)
+            out.append((record, self._last_scores.pop(run.run_id, None)))
+        return out
+
+
+def fit_groups(runs: Iterable[RunConfig]) -> list[list[RunConfig]]:
+    """Runs that can share windows and fitted models, grouped; groups are independent units of work."""
+    groups: dict[str, list[RunConfig]] = {}
+    for r in _ordered(runs):
+        key = json.dumps([r.dataset, r.windows, r.task, r.split, r.detector, r.seed], sort_keys=True)
+        groups.setdefault(key, []).append(r)
+    return list(groups.values())
+
+
 def run_experiment(
     experiment: Experiment,
     home: Path,
@@ -263,6 +291,9 @@ def run_experiment(
     track: bool = True,
     only: Callable[[RunConfig], bool] | None = None,
     on_finish: Callable[[dict], None] | None = None,
+    engine: str = "local",
+    scheduler: str | None = None,
+    workers: int | None = None,
 ) -> dict:
     """Run (or resume) every config of the grid; failed runs are recorded and the rest continue."""
     from harness.tracking import Tracker
@@ -273,17 +304,25 @@ def run_experiment(
     done_before = len(todo) - len(pending)
     _say(progress, f"{experiment.name}: {len(todo)} runs, {done_before} already finished, {len(pending)} to run")
     tracker = Tracker(experiment.output, experiment.name) if track else None
-    runner = Runner(experiment, home, progress=progress, mirror=mirror)
     counts = {"finished": 0, "failed": 0, "skipped": done_before}
-    for i, run in enumerate(_ordered(pending), 1):
+    if engine == "dask":
+        from harness.engines import dask_results
+
+        results = dask_results(experiment, fit_groups(pending), home, mirror=mirror, scheduler=scheduler,
+                               workers=workers, progress=progress)
+    elif engine == "local":
+        runner = Runner(experiment, home, progress=progress, mirror=mirror)
+        results = ((rec, scores) for group in fit_groups(pending) for rec, scores in runner.execute_group(group))
+    else:
+        raise ConfigError(f"engine: must be local or dask, got {engine!r}")
+    by_id = {r.run_id: r for r in pending}
+    for i, (record, scores) in enumerate(results, 1):
+        run = by_id[record["run_id"]]
+        if store.finished(run.run_id):
+            continue  # a retried unit of work may deliver a run twice: record it once
+        if scores is not None:
+            store.write_scores(run.run_id, scores)
         label = f"[{i}/{len(pending)}] {run.dataset} {run.detector_label} noise={run.noise_name} seed={run.seed}"
-        try:
-            record = runner.execute(run)
-        except Exception as exc:  # noqa: BLE001 - a failing run is recorded and the grid goes on
-            record = {
-                "run_id": run.run_id, "status": "failed", "config": run.canonical(), "experiment": experiment.name,
-                "error": describe_failure(exc), "traceback": traceback.format_exc(),
-            }
         if tracker is not None:
             tracker.log(record, store)
         store.write(record)
@@ -292,9 +331,13 @@ def run_experiment(
             on_finish(record)
         if record["status"] == "finished":
             m = record["metrics"]
+            caught = "recall_predicted" if run.task["name"] == "predict" else "recall_detected_or_predicted"
+            per = ("false_alarms_per_predicted_failure" if run.task["name"] == "predict"
+                   else "false_alarms_per_caught_failure")
             _say(progress, f"{label}: AUPRC {m.get('auprc', float('nan')):.3f}  "
-                           f"recall(pred) {m.get('recall_predicted', float('nan')):.2f}  "
-                           f"FA/pred {m.get('false_alarms_per_predicted_failure', float('nan')):.2f}  "
+                           f"failures {'predicted' if caught == 'recall_predicted' else 'caught'} "
+                           f"{m.get(caught, float('nan')):.2f}  "
+                           f"false alarms per failure {m.get(per, float('nan')):.1f}  "
                            f"({record['timing']['total_s']:.1f}s{', reused fit' if record['timing']['reused_fit'] else ''})")
         else:
             _say(progress, f"{label}: FAILED: {record['error']}")

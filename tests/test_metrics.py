@@ -521,3 +521,22 @@ def test_bootstrap_rejects_bad_requests() -> None:
         bootstrap_ci(rep, "recall_predicted", unit="node")
     with pytest.raises(ConfigError, match="bootstrap.level"):
         bootstrap_ci(rep, "recall_predicted", level=95)
+
+
+def test_short_failure_inside_one_window_is_detected_by_that_window() -> None:
+    # Worked by hand: hourly windows of node n1 on a day; an alert line burst lasts from
+    # 10:20 to 10:25 (a real-log pattern: BGL alert runs are often seconds long). The
+    # window [10:00, 11:00) alerts; its alert time is 11:00 (window end), after the
+    # failure ended, yet the window holds the failure, so the failure is detected.
+    day = pd.Timestamp("2026-01-05", tz="UTC")
+    starts = [day + pd.Timedelta(hours=h) for h in range(8, 13)]
+    meta = pd.DataFrame({"entity": ["n1"] * 5, "start": starts, "end": [s + pd.Timedelta(hours=1) for s in starts]})
+    scores = np.array([0.1, 0.1, 0.9, 0.1, 0.1])  # only the 10:00 window alerts
+    inc = pd.DataFrame({"id": [1], "entity": ["n1"], "start": [day + pd.Timedelta("10h20min")],
+                        "end": [day + pd.Timedelta("10h25min")], "kind": ["failure"]})
+    rep = incident_metrics(meta, scores, 0.5, inc, None, pd.Timedelta("1h"))
+    s = rep.summary()
+    assert s["detected"] == 1 and s["false_alarms"] == 0 and s["recall_detected_or_predicted"] == 1.0
+    # The next window [11:00, 12:00) does not overlap it: an alert there is a false alarm.
+    rep2 = incident_metrics(meta, np.array([0.1, 0.1, 0.1, 0.9, 0.1]), 0.5, inc, None, pd.Timedelta("1h"))
+    assert rep2.summary()["detected"] == 0 and rep2.summary()["false_alarms"] == 1
