@@ -11,8 +11,8 @@ How Drain assigns a line (as in the reference library):
 1. Mask: each mask regex, in order, is replaced by `<*>` in the raw content.
 2. Tokenise: extra delimiters become spaces, then split on whitespace.
 3. Route through a prefix tree: first by token count, then by the first
-   `depth - 3` tokens (fewer if the line is shorter). A token without an exact
-   child goes to the `<*>` child; no child at all means "new template".
+   `depth - 3` tokens (never the last token of a line). A token without an
+   exact child goes to the `<*>` child; no child at all means "new template".
 4. In the leaf, pick the template with the most equal non-`<*>` positions
    (ties: the one with more `<*>`, then the oldest). It matches when
    equal / token count >= similarity; otherwise a new template starts.
