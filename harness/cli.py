@@ -155,6 +155,47 @@ def cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_gate(args: argparse.Namespace) -> int:
+    """Re-run (or read) an experiment and compare it with the committed reference."""
+    import tempfile
+
+    from harness.experiment import load_experiment
+    from harness.gate import compare, format_table, gate_settings, read_results
+    from harness.registry import home_dir
+    from harness.report import load_results
+    from harness.runs import RunStore, run_experiment
+
+    exp = load_experiment(Path(args.experiment))
+    reference_dir = Path(args.reference) if args.reference else exp.output
+    reference = read_results(reference_dir, "reference")
+    metrics, tol, rel = gate_settings(exp.raw.get("gate"))
+    if args.tolerance is not None:
+        tol = args.tolerance
+    if args.fresh:
+        fresh = read_results(Path(args.fresh), "fresh results")
+        where = Path(args.fresh)
+    else:
+        out = Path(args.out) if args.out else Path(tempfile.mkdtemp(prefix="logtrial-gate-"))
+        fresh_exp = load_experiment(Path(args.experiment), output=out)
+        counts = run_experiment(fresh_exp, home_dir(), progress=not args.quiet, track=False)
+        if counts["failed"]:
+            print(f"gate: {counts['failed']} run(s) failed; see {out / 'runs'}", file=sys.stderr)
+        load_results(RunStore(out).records()).to_csv(out / "results.csv", index=False, float_format="%.6g")
+        fresh = read_results(out, "fresh results")  # same rounding as the committed reference
+        where = out
+    result = compare(reference, fresh, metrics, tol, rel)
+    print(f"gate {exp.name}: reference {reference_dir / 'results.csv'}  vs  fresh {where}")
+    print(format_table(result, only_moved=not args.all))
+    n = len(result.table)
+    bad = result.regressions
+    if bad.empty:
+        print(f"\nPASS: {n} figures compared, no regression (tolerance {tol:g} or the reference interval)")
+        return 0
+    worst = ", ".join(f"{r.detector}/{r.noise} {r.metric} {r.note}" for r in bad.head(5).itertuples())
+    print(f"\nFAIL: {len(bad)} of {n} figures regressed: {worst}")
+    return 1
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser with every verb and its examples."""
     p = argparse.ArgumentParser(
@@ -218,6 +259,16 @@ def build_parser() -> argparse.ArgumentParser:
               "logtrial report reports/bgl-2k/experiment.yaml")
     sp.add_argument("experiment", metavar="EXPERIMENT.yaml")
     sp.add_argument("--out", metavar="DIR", help="output folder holding the runs (default: the file's `output`)")
+
+    sp = verb("gate", cmd_gate, "compare a fresh run with the committed reference; exit 1 on regression",
+              "logtrial gate reports/bgl-2k/experiment.yaml")
+    sp.add_argument("experiment", metavar="EXPERIMENT.yaml")
+    sp.add_argument("--reference", metavar="DIR", help="reference results folder (default: the file's `output`)")
+    sp.add_argument("--fresh", metavar="DIR", help="compare these results instead of re-running")
+    sp.add_argument("--out", metavar="DIR", help="where the fresh run goes (default: a temporary folder)")
+    sp.add_argument("--tolerance", type=float, help="absolute tolerance (default: the file's gate.tolerance or 0.02)")
+    sp.add_argument("--all", action="store_true", help="show every compared figure, not only those that moved")
+    sp.add_argument("--quiet", action="store_true", help="no per-run progress")
 
     from harness.demo import add_demo_parser
 

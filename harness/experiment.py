@@ -17,7 +17,7 @@ from harness.registry import read_yaml
 
 TOP_LEVEL = {
     "experiment", "description", "output", "datasets", "windows", "tasks", "task", "split", "noise", "detectors",
-    "seeds", "threshold", "scoring", "registry",
+    "seeds", "threshold", "scoring", "registry", "gate",
 }
 SCORING_DEFAULTS = {"cooldown": "1h", "bootstrap": 200, "ci_level": 0.95, "bootstrap_unit": "entity"}
 
@@ -248,6 +248,9 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
         raise ConfigError(f"threshold: {exc}") from None
     threshold = policy.as_dict()
     scoring = _canonical_scoring(doc.get("scoring"), "scoring")
+    from harness.gate import gate_settings
+
+    gate_settings(doc.get("gate"))
     runs = [
         RunConfig(dataset=d, windows=w, task=t, split=split, noise=n, detector=det, seed=int(s),
                   threshold=threshold, scoring=scoring)
