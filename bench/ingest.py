@@ -3,7 +3,9 @@
 (a) a bare loop of drain3 0.9.11 `TemplateMiner.add_log_message` (the reference
     library) over the content fields;
 (b) our `DrainMiner.add_many` over the same contents, with the same settings;
-(c) `logtrial ingest` end to end (see `time_ingest_end_to_end`).
+(c) `logtrial ingest` end to end (read, split headers, parse times, mine, write
+    Parquet) of the same lines, one file per system; and the peak RSS growth of
+    ingesting a 5,000,000-line log in a fresh process.
 
 The log is built from the HDFS and BGL Loghub 2k samples: lines are drawn at
 random and their identifiers (block ids, IP addresses and ports, node names,
@@ -187,18 +189,73 @@ def time_ours(contents: list[str], settings: dict) -> tuple[np.ndarray, float]:
 
 
 # =============================================================================
-# Part (c): end-to-end ingest. TO BE FILLED IN (lead): time
-# `logtrial ingest --file ... --format ...`. One format per file is needed, so
-# build single-system logs, e.g. build_replicated_log(path, n, seed, systems=("HDFS",)).
+# Part (c): end-to-end ingest, and peak memory of a large ingest.
 # =============================================================================
 
 
-def time_ingest_end_to_end(log_path: Path) -> None:
-    """(c) Time `logtrial ingest --file ... --format ...` end to end."""
-    print("(c) end-to-end ingest: not implemented yet")
+def split_by_system(log_path: Path, systems: Sequence[str] = ("HDFS", "BGL")) -> dict[str, Path]:
+    """Write each system's lines of the mixed log to a file of its own (one line format per file)."""
+    registry = load_registry()
+    patterns = {s: re.compile(get_entry(REGISTRY_NAMES[s], registry).format.regex) for s in systems}
+    outs = {s: log_path.with_name(f"{log_path.stem}-{s}.log") for s in systems}
+    handles = {s: p.open("w", encoding="utf-8") for s, p in outs.items()}
+    try:
+        with log_path.open(encoding="utf-8") as lines:
+            for line in lines:
+                for system, pattern in patterns.items():  # HDFS first: the BGL format also accepts HDFS lines
+                    if pattern.match(line.rstrip("\n")):
+                        handles[system].write(line)
+                        break
+    finally:
+        for h in handles.values():
+            h.close()
+    return outs
 
 
-# =============================================================================
+def time_ingest_end_to_end(files: dict[str, Path], workdir: Path) -> tuple[int, float]:
+    """(c) Ingest each system's file end to end (read, split headers, parse times, mine, write Parquet)."""
+    from harness.ingest import ingest_files
+
+    registry = load_registry()
+    total_n, total_s = 0, 0.0
+    for system, path in files.items():
+        entry = get_entry(REGISTRY_NAMES[system], registry)
+        start = time.process_time()
+        res = ingest_files(f"bench-{system.lower()}", [path], entry.format, entry.miner, workdir / "tables",
+                           force=True)
+        seconds = time.process_time() - start
+        n = res.manifest["rows"]
+        _report(f"(c) ingest {system}", n, seconds)
+        total_n, total_s = total_n + n, total_s + seconds
+    return total_n, total_s
+
+
+_RSS_PROBE = """
+import resource, sys, time
+from pathlib import Path
+from harness.ingest import ingest_files
+from harness.registry import get_entry, load_registry
+import pyarrow.parquet, pandas, numpy
+entry = get_entry(sys.argv[1], load_registry())
+before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+res = ingest_files("bench-rss", [Path(sys.argv[2])], entry.format, entry.miner, Path(sys.argv[3]), force=True)
+after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+print(before, after, res.manifest["rows"])
+"""
+
+
+def peak_rss_growth(n_lines: int, seed: int, workdir: Path, system: str = "BGL") -> None:
+    """Ingest an n_lines single-system log in a fresh process; print peak RSS growth over the imports."""
+    import subprocess
+
+    path = build_replicated_log(workdir / f"rss-{system}-{n_lines}.log", n_lines, seed, systems=(system,))
+    out = subprocess.run(
+        [sys.executable, "-c", _RSS_PROBE, REGISTRY_NAMES[system], str(path), str(workdir / "rss-tables")],
+        check=True, capture_output=True, text=True, cwd=Path(__file__).resolve().parents[1],
+    ).stdout.split()
+    before, after, rows = int(out[0]), int(out[1]), int(out[2])
+    print(f"peak RSS: {before / 1024:.0f} MiB after imports, {after / 1024:.0f} MiB after ingesting "
+          f"{rows:,d} {system} lines; growth {(after - before) / 1024:.0f} MiB (target < 500 MiB)")
 
 
 def _report(name: str, n: int, seconds: float) -> float:
@@ -219,7 +276,7 @@ def _best_of(repeat: int, contents: list[str], settings: dict) -> tuple[np.ndarr
     return ref_ids, seconds_a, our_ids, seconds_b
 
 
-def run(n_lines: int, seed: int, workdir: Path, repeat: int = 1) -> None:
+def run(n_lines: int, seed: int, workdir: Path, repeat: int = 1, rss_lines: int = 0) -> None:
     """Build the replicated log and print the (a)/(b) timings and their ratio."""
     logging.disable(logging.INFO)  # drain3 logs at INFO when a miner starts
     log_path = workdir / f"replicated-{n_lines}-{seed}.log"
@@ -242,8 +299,12 @@ def run(n_lines: int, seed: int, workdir: Path, repeat: int = 1) -> None:
     print("all systems:")
     rate_a = _report("(a) drain3 add_log_message", total_n, total_a)
     rate_b = _report("(b) DrainMiner.add_many", total_n, total_b)
-    print(f"  ratio (b)/(a): {rate_b / rate_a:.2f}x")
-    time_ingest_end_to_end(log_path)
+    print(f"  ratio (b)/(a): {rate_b / rate_a:.2f}x  (target >= 3)")
+    n_c, seconds_c = time_ingest_end_to_end(split_by_system(log_path), workdir)
+    rate_c = _report("(c) logtrial ingest, all", n_c, seconds_c)
+    print(f"  ratio (c)/(a): {rate_c / rate_a:.2f}x  (target >= 1.5)")
+    if rss_lines:
+        peak_rss_growth(rss_lines, seed, workdir)
 
 
 def main(argv: Sequence[str] | None = None) -> None:
@@ -253,14 +314,17 @@ def main(argv: Sequence[str] | None = None) -> None:
     parser.add_argument("--quick", action="store_true", help="100,000 lines")
     parser.add_argument("--seed", type=int, default=7)
     parser.add_argument("--repeat", type=int, default=1, help="time each side this many times, keep the least")
+    parser.add_argument("--rss-lines", type=int, default=5_000_000,
+                        help="lines of the peak-memory ingest (default 5,000,000; 0 skips it)")
     parser.add_argument("--workdir", type=Path, default=None, help="where to write the log (default: a temp dir)")
     args = parser.parse_args(argv)
     n_lines = 100_000 if args.quick else args.lines
+    rss_lines = 200_000 if args.quick else args.rss_lines
     if args.workdir is not None:
-        run(n_lines, args.seed, args.workdir, args.repeat)
+        run(n_lines, args.seed, args.workdir, args.repeat, rss_lines)
         return
     with tempfile.TemporaryDirectory(prefix="logtrial-bench-") as tmp:
-        run(n_lines, args.seed, Path(tmp), args.repeat)
+        run(n_lines, args.seed, Path(tmp), args.repeat, rss_lines)
 
 
 if __name__ == "__main__":

@@ -124,27 +124,40 @@ def _decoded_lines(path: Path, encoding: str, counters: _Counters, strict: bool)
             yield lines
 
 
-def _parse_timestamps(parts: pd.DataFrame, fmt: LineFormat) -> pd.Series:
-    """Vectorised timestamp parsing per the format's rule, in UTC; NaT where a value does not parse."""
+def _parse_timestamps(values: list[str], fmt: LineFormat) -> np.ndarray:
+    """Timestamps (datetime64[us], UTC) of joined header values per the format's rule; NaT where one does not parse."""
     ts = fmt.timestamp
     assert ts is not None
-    joined = parts[f"f_{ts.fields[0]}"].astype(str)
-    for f in ts.fields[1:]:
-        joined = joined + " " + parts[f"f_{f}"].astype(str)
+    arr = np.asarray(values, dtype=object)
     if ts.unit is not None:
-        num = pd.to_numeric(joined, errors="coerce")
+        num = pd.to_numeric(arr, errors="coerce")
         out = pd.to_datetime(num, unit=ts.unit, errors="coerce", utc=True)
     else:
         pattern = ts.format
         if ts.default_year is not None:
-            joined = f"{ts.default_year} " + joined
+            arr = np.asarray([f"{ts.default_year} {v}" for v in values], dtype=object)
             pattern = "%Y " + pattern
         # Repeated whitespace (e.g. "Jul  1") parses the same as one space.
-        joined = joined.str.replace(r"\s+", " ", regex=True)
-        out = pd.to_datetime(joined, format=pattern, errors="coerce")
-        out = out.dt.tz_localize(ts.tz) if out.dt.tz is None else out
-        out = out.dt.tz_convert("UTC")
-    return out.astype("datetime64[us, UTC]")
+        if any("  " in v for v in arr):
+            arr = np.asarray([" ".join(v.split()) for v in arr], dtype=object)
+        out = pd.to_datetime(arr, format=pattern, errors="coerce")
+        out = out.tz_localize(ts.tz) if out.tz is None else out
+    return np.asarray(out.tz_convert("UTC").tz_localize(None), dtype="datetime64[us]")
+
+
+@dataclass
+class _Chunk:
+    """Parsed rows of one chunk of lines, column by column (plain lists and arrays, no pandas strings)."""
+
+    line: np.ndarray
+    ts: np.ndarray
+    content: list
+    entity: list | str
+    group: list | str | None
+    tag: list | str
+
+    def __len__(self) -> int:
+        return len(self.line)
 
 
 class _LineParser:
@@ -161,52 +174,71 @@ class _LineParser:
                 self.fields.append(name)
         self.group_rx = re.compile(fmt.group.pattern) if fmt.group and fmt.group.pattern else None
         self.path_group = path_group
+        self.group_indices = tuple(self.rx.groupindex[f] for f in self.fields)
+        self.position = {f: i for i, f in enumerate(self.fields)}
 
-    def parse(self, lines: list[str], first_line: int) -> tuple[pd.DataFrame, list[tuple[int, str, str]]]:
-        """Split lines into header fields; return parsed rows and (line, reason, text) rejects."""
+    def _column(self, cols: list, name: str) -> list:
+        """One header field's values ("" where its optional group did not take part)."""
+        values = cols[self.position[name]]
+        return [v or "" for v in values] if None in values else list(values)
+
+    def parse(self, lines: list[str], first_line: int) -> tuple[_Chunk | None, list[tuple[int, str, str]]]:
+        """Split lines into header fields; return the parsed rows and (line, reason, text) rejects."""
         match = self.rx.match
         matches = [match(s) for s in lines]
         ok = np.fromiter((m is not None for m in matches), dtype=bool, count=len(matches))
-        bad = [(first_line + i, "line does not match the format's regex", lines[i]) for i in np.flatnonzero(~ok)]
-        good = [m for m in matches if m is not None]
+        bad = [(first_line + int(i), "line does not match the format's regex", lines[i]) for i in np.flatnonzero(~ok)]
+        good = [m for m in matches if m is not None] if len(bad) else matches
         if not good:
-            return pd.DataFrame(columns=[c.name for c in EVENT_SCHEMA]), bad
-        # Header fields live under an `f_` prefix so they never collide with table columns.
-        df = pd.DataFrame({f"f_{f}": [m.group(f) or "" for m in good] for f in self.fields})
-        df["line"] = np.flatnonzero(ok).astype(np.int64) + first_line
-        df["content"] = df["f_content"].str.strip()
+            return None, bad
+        # One C-level m.group(*indices) per line returns every wanted field at once.
+        idx = self.group_indices
+        rows = [m.group(*idx) for m in good] if len(idx) > 1 else [(m.group(idx[0]),) for m in good]
+        cols = list(zip(*rows))
+        line = np.flatnonzero(ok).astype(np.int64) + first_line
+        content = [c.strip() for c in self._column(cols, "content")]
+        keep = None
         if self.fmt.timestamp:
-            df["ts"] = _parse_timestamps(df, self.fmt)
-            nat = df["ts"].isna().to_numpy()
+            fields = [self._column(cols, f) for f in self.fmt.timestamp.fields]
+            joined = fields[0] if len(fields) == 1 else [" ".join(v) for v in zip(*fields)]
+            ts = _parse_timestamps(joined, self.fmt)
+            nat = np.isnat(ts)
             if nat.any():
-                raw = df.loc[nat, [f"f_{f}" for f in self.fmt.timestamp.fields]].astype(str).agg(" ".join, axis=1)
                 expect = self.fmt.timestamp.format or f"epoch {self.fmt.timestamp.unit}"
-                bad += [
-                    (int(ln), f"timestamp {val!r} does not match {expect!r}", lines[int(ln) - first_line])
-                    for ln, val in zip(df.loc[nat, "line"], raw)
-                ]
-                df = df.loc[~nat].reset_index(drop=True)
+                bad += [(int(line[i]), f"timestamp {joined[i]!r} does not match {expect!r}",
+                         lines[int(line[i]) - first_line]) for i in np.flatnonzero(nat)]
+                keep = np.flatnonzero(~nat)
         else:
             # No timestamp in the format: the line number stands in as seconds since the epoch,
             # so time-ordered stages still see the file order.
-            df["ts"] = pd.to_datetime(df["line"], unit="s", utc=True).astype("datetime64[us, UTC]")
-        df["entity"] = df[f"f_{self.fmt.entity}"] if self.fmt.entity else ""
+            ts = line.astype("datetime64[s]").astype("datetime64[us]")
+        entity: list | str = self._column(cols, self.fmt.entity) if self.fmt.entity else ""
+        group: list | str | None
         if self.group_rx is not None:
             # First match in the content is the session key (a line naming several keys counts for the first).
             which = 1 if self.group_rx.groups else 0
             search = self.group_rx.search
-            df["group"] = [m.group(which) if (m := search(c)) else None for c in df["content"]]
+            group = [m.group(which) if (m := search(c)) else None for c in content]
         elif self.fmt.group and self.fmt.group.field:
-            df["group"] = df[f"f_{self.fmt.group.field}"].replace("", None)
+            group = [v or None for v in self._column(cols, self.fmt.group.field)]
         else:
-            df["group"] = self.path_group
+            group = self.path_group
+        tag: list | str = ""
         if self.fmt.tag:
-            tag = df[f"f_{self.fmt.tag.field}"]
-            df["tag"] = tag.where(tag != self.fmt.tag.normal, "")
-        else:
-            df["tag"] = ""
+            normal = self.fmt.tag.normal
+            tag = [("" if v == normal else v) for v in self._column(cols, self.fmt.tag.field)]
+        chunk = _Chunk(line, ts, content, entity, group, tag)
+        if keep is not None:
+            chunk = _take(chunk, keep)
         bad.sort()
-        return df, bad
+        return (chunk if len(chunk) else None), bad
+
+
+def _take(chunk: _Chunk, keep: np.ndarray) -> _Chunk:
+    """The rows of a chunk at the given positions."""
+    pick = (lambda v: [v[i] for i in keep] if isinstance(v, list) else v)  # noqa: E731
+    return _Chunk(chunk.line[keep], chunk.ts[keep], pick(chunk.content), pick(chunk.entity), pick(chunk.group),
+                  pick(chunk.tag))
 
 
 def _path_group(path: Path, fmt: LineFormat) -> str | None:
@@ -302,33 +334,38 @@ def _write_table(
                 for lines in _decoded_lines(path, fmt.encoding, counters, strict):
                     first = counters.lines + 1
                     counters.lines += len(lines)
-                    df, bad = parser.parse(lines, first)
+                    chunk, bad = parser.parse(lines, first)
                     for ln, reason, text in bad:
                         kind = "timestamp does not parse" if reason.startswith("timestamp") else reason
                         counters.reasons[kind] = counters.reasons.get(kind, 0) + 1
                         clean = text[:QUARANTINE_TEXT_CHARS].replace("\t", " ")
                         qf.write(f"{ln}\t{reason}\t{clean}\n")
                     counters.quarantined += len(bad)
-                    if len(df):
-                        df["event"] = miner.add_many(df["content"].tolist()).astype(np.int32)
-                        writer.write_table(_arrow_chunk(df))
-                        counters.rows += len(df)
+                    if chunk is not None:
+                        events = np.asarray(miner.add_many(chunk.content), dtype=np.int32)
+                        writer.write_table(_arrow_chunk(chunk, events))
+                        counters.rows += len(chunk)
                     bar.update(sum(len(s) + 1 for s in lines))
         finally:
             writer.close()
             bar.close()
 
 
-def _arrow_chunk(df: pd.DataFrame) -> pa.Table:
-    """One chunk of the event table as Arrow, column by column in the table's schema."""
-    ts = df["ts"].dt.tz_convert("UTC").dt.tz_localize(None).to_numpy(dtype="datetime64[us]")
+def _arrow_chunk(chunk: _Chunk, events: np.ndarray) -> pa.Table:
+    """One chunk of the event table as Arrow, in the table's schema."""
+    n = len(chunk)
+
+    def text(v: list | str | None) -> pa.Array:
+        return pa.array(v, type=pa.string()) if isinstance(v, list) else pa.nulls(n, pa.string()).fill_null(v) \
+            if v is not None else pa.nulls(n, pa.string())
+
     cols = [
-        pa.array(df["line"].to_numpy(dtype=np.int64)),
-        pa.array(ts, type=pa.timestamp("us")).cast(pa.timestamp("us", tz="UTC")),
-        pa.array(df["entity"].astype(object).to_numpy(), type=pa.string()),
-        pa.array(df["group"].astype(object).where(df["group"].notna(), None).to_numpy(), type=pa.string()),
-        pa.array(df["event"].to_numpy(dtype=np.int32)),
-        pa.array(df["tag"].astype(object).to_numpy(), type=pa.string()),
+        pa.array(chunk.line),
+        pa.array(chunk.ts, type=pa.timestamp("us")).cast(pa.timestamp("us", tz="UTC")),
+        text(chunk.entity),
+        text(chunk.group),
+        pa.array(events, type=pa.int32()),
+        text(chunk.tag),
     ]
     return pa.Table.from_arrays(cols, schema=EVENT_SCHEMA)
 
