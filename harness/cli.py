@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import textwrap
 from pathlib import Path
 
 from harness import __version__
-from harness.errors import LogtrialError
+from harness.errors import ConfigError, LogtrialError
 
 
 def _table(rows: list[dict], columns: list[str]) -> str:
@@ -133,9 +134,19 @@ def cmd_run(args: argparse.Namespace) -> int:
     from harness.registry import home_dir
     from harness.runs import run_experiment
 
+    from harness.engines import check_engine_options, is_url, local_home
+
+    check_engine_options(args.engine, args.scheduler, args.workers)
     exp = load_experiment(Path(args.experiment), output=args.out)
-    counts = run_experiment(exp, home_dir(), progress=True, mirror=Path(args.mirror) if args.mirror else None,
-                            track=not args.no_track)
+    home: Path | str = home_dir()
+    raw_home = os.environ.get("LOGTRIAL_HOME", "")
+    if is_url(raw_home):
+        home = local_home(raw_home) or raw_home
+        if args.engine == "local" and isinstance(home, str):
+            raise ConfigError(f"LOGTRIAL_HOME: {raw_home} is an object-store URL; it needs --engine dask")
+    counts = run_experiment(exp, home, progress=True, mirror=Path(args.mirror) if args.mirror else None,
+                            track=not args.no_track, engine=args.engine, scheduler=args.scheduler,
+                            workers=args.workers)
     print(f"{exp.name}: {counts['finished']} finished, {counts['failed']} failed, "
           f"{counts['skipped']} already done; results in {exp.output}")
     return 1 if counts["failed"] else 0
@@ -249,11 +260,19 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--seed", type=int)
 
     sp = verb("run", cmd_run, "run or resume an experiment grid (every run recorded)",
-              "logtrial run reports/bgl-2k/experiment.yaml")
+              "logtrial run reports/bgl-2k/experiment.yaml\n"
+              "  logtrial run reports/bgl-2k/experiment.yaml --engine dask --workers 2\n"
+              "  logtrial run reports/bgl-2k/experiment.yaml --engine dask --scheduler tcp://scheduler-host:8786")
     sp.add_argument("experiment", metavar="EXPERIMENT.yaml")
     sp.add_argument("--out", metavar="DIR", help="output folder (default: the file's `output`)")
     sp.add_argument("--mirror", metavar="DIR")
     sp.add_argument("--no-track", action="store_true", help="do not record runs in MLflow")
+    sp.add_argument("--engine", choices=["local", "dask"], default="local",
+                    help="local: in this process (default); dask: one task per fit group on a Dask cluster")
+    sp.add_argument("--scheduler", metavar="ADDRESS",
+                    help="with --engine dask: address of a running Dask scheduler (data home must be shared)")
+    sp.add_argument("--workers", type=int, metavar="N",
+                    help="with --engine dask and no --scheduler: start a local cluster of N worker processes")
 
     sp = verb("report", cmd_report, "comparison tables and plots from recorded runs",
               "logtrial report reports/bgl-2k/experiment.yaml")

@@ -307,6 +307,11 @@ def ingest_files(
             "mined_lines": counters.rows,
         }
         (tmp / "manifest.json").write_text(json.dumps(manifest, indent=2, sort_keys=True))
+        if folder.exists() and not force and (folder / "manifest.json").is_file():
+            # Another process finished the same table meanwhile: keep theirs (identical inputs and settings).
+            shutil.rmtree(tmp, ignore_errors=True)
+            manifest = json.loads((folder / "manifest.json").read_text())
+            return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", manifest, cached=True)
         if folder.exists():
             shutil.rmtree(folder)
         os.replace(tmp, folder)

@@ -143,7 +143,9 @@ class Runner:
         from harness.splits import chronological_split, random_split
         from harness.windows import build_windows, label_windows
 
-        key = json.dumps([run.dataset, run.windows, run.task, run.split], sort_keys=True)
+        # A random split draws with the run's seed, so it is shared only between runs with that seed.
+        seed = run.seed if run.split["kind"] == "random" else None
+        key = json.dumps([run.dataset, run.windows, run.task, run.split, seed], sort_keys=True)
         if key not in self._prepared:
             data = self.dataset(run.dataset)
             ws = build_windows(data.events, data.vocab_size, run.windows)
@@ -214,7 +216,10 @@ class Runner:
         cooldown = pd.Timedelta(run.scoring["cooldown"])
         choice = choose_threshold(policy, val_scores, val_labels, meta.iloc[split.val], cooldown)
         test_truth = prep.truth_labels[split.test]
-        lo, hi = split.ranges["test"]
+        if "test" in split.ranges:
+            lo, hi = split.ranges["test"]
+        else:  # a random split has no time range: the test windows' own span
+            lo, hi = meta["start"].iloc[split.test].min(), meta["end"].iloc[split.test].max()
         report = evaluate_run(
             meta=meta.iloc[split.test].reset_index(drop=True), scores=test_scores, labels=test_truth,
             threshold=choice.threshold, incidents=data.truth, horizon=prep.horizon, cooldown=cooldown,
@@ -284,7 +289,7 @@ def fit_groups(runs: Iterable[RunConfig]) -> list[list[RunConfig]]:
 
 def run_experiment(
     experiment: Experiment,
-    home: Path,
+    home: Path | str,
     *,
     progress: bool = True,
     mirror: Path | None = None,

@@ -192,3 +192,12 @@ def test_run_ids_are_stable_and_change_with_the_config(tmp_path: Path) -> None:
     assert not {r.run_id for r in a.runs} & {r.run_id for r in c.runs}
     rec = json.dumps(a.runs[0].canonical(), sort_keys=True)
     assert "relay-small" in rec and "code_version" in rec
+
+
+def test_random_split_runs_and_warns_in_the_record(tmp_path: Path, home: Path) -> None:
+    exp = load_experiment(_experiment(tmp_path, split={"kind": "random", "fractions": [0.5, 0.2, 0.3]},
+                                      detectors=["pca"], noise=[{"name": "clean"}]))
+    counts = run_experiment(exp, home, progress=False, track=False)
+    assert counts["finished"] == 1
+    rec = RunStore(exp.output).records()[0]
+    assert rec["warnings"] and "random" in rec["warnings"][0].lower()
