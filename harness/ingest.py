@@ -140,9 +140,33 @@ def _parse_timestamps(values: list[str], fmt: LineFormat) -> np.ndarray:
         # Repeated whitespace (e.g. "Jul  1") parses the same as one space.
         if any("  " in v for v in arr):
             arr = np.asarray([" ".join(v.split()) for v in arr], dtype=object)
-        out = pd.to_datetime(arr, format=pattern, errors="coerce")
+        out = _strptime(arr, pattern)
         out = out.tz_localize(ts.tz) if out.tz is None else out
     return np.asarray(out.tz_convert("UTC").tz_localize(None), dtype="datetime64[us]")
+
+
+_FRACTION = re.compile(r"(.*%S)([.,:])%f")
+
+
+def _strptime(values: np.ndarray, pattern: str) -> pd.DatetimeIndex:
+    """Parse strings with a strftime pattern; NaT where one does not parse.
+
+    A trailing fraction of a second (``%S.%f`` and the like) is split off so that the
+    rest, repeated within each second, goes through pandas' parse cache, and the
+    fraction is added as microseconds; same result as parsing the whole pattern.
+    """
+    m = _FRACTION.fullmatch(pattern)
+    if not m:
+        return pd.DatetimeIndex(pd.to_datetime(values, format=pattern, errors="coerce"))
+    head_fmt, sep = m.group(1), m.group(2)
+    parts = [v.rpartition(sep) for v in values]
+    heads = np.asarray([p[0] if p[1] else "" for p in parts], dtype=object)
+    fracs = [p[2] for p in parts]
+    good = np.fromiter((0 < len(f) <= 9 and f.isdigit() for f in fracs), dtype=bool, count=len(fracs))
+    micros = np.asarray([int(f[:6].ljust(6, "0")) if ok else 0 for f, ok in zip(fracs, good)], dtype="int64")
+    base = pd.DatetimeIndex(pd.to_datetime(heads, format=head_fmt, errors="coerce", cache=True))
+    out = base + pd.to_timedelta(micros, unit="us")
+    return out.where(good, pd.NaT)
 
 
 @dataclass

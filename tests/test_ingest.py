@@ -241,3 +241,24 @@ def test_cli_fetch_ingest_parse_score_on_real_sample(loghub_dir: Path, home: Pat
     assert main(["datasets"]) == 0
     listing = capsys.readouterr().out
     assert [ln for ln in listing.splitlines() if ln.startswith("bgl-2k ")][0].rstrip().endswith("fetched")
+
+
+@pytest.mark.parametrize("pattern", ["%Y-%m-%d-%H.%M.%S.%f", "%Y-%m-%d %H:%M:%S,%f", "%Y%m%d-%H:%M:%S:%f"])
+def test_fraction_split_parse_equals_pandas_full_pattern(pattern: str) -> None:
+    # Reference library: pandas.to_datetime with the whole pattern, on valid, short,
+    # missing and malformed fractions.
+    from harness.ingest import _strptime
+
+    rng = np.random.default_rng(3)
+    base = pd.Timestamp("2005-06-03") + pd.to_timedelta(rng.integers(0, 10**9, 300), unit="s")
+    sep = pattern[pattern.index("%S") + 2]
+    values = []
+    for i, t in enumerate(base):
+        head = t.strftime(pattern[: pattern.index("%S") + 2])
+        frac = str(rng.integers(0, 10**6)).zfill(6)[: 1 + i % 6]
+        values.append(head + sep + frac if i % 17 else head)
+    values += ["garbage", head + sep + "12x", head + sep]
+    arr = np.asarray(values, dtype=object)
+    ours = _strptime(arr, pattern)
+    ref = pd.DatetimeIndex(pd.to_datetime(arr, format=pattern, errors="coerce"))
+    assert ours.equals(ref)
