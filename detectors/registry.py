@@ -11,11 +11,15 @@ from pydantic import ValidationError
 
 from detectors.base import Detector, read_saved
 from detectors.clustering import LogClustering
+from detectors.density_autoencoder import DensityAutoencoder
 from detectors.invariants import InvariantMining
+from detectors.next_event import NextEventLSTM
 from detectors.pca import PCADetector
 from detectors.pyod_adapter import PYOD_DETECTORS
 from detectors.rate_rule import RateRule
+from detectors.seq_autoencoder import SequenceAutoencoder
 from detectors.supervised import LogisticDetector, TreeDetector
+from detectors.two_stage import TwoStage
 from harness.errors import ConfigError
 
 ENTRY_POINT_GROUP = "logtrial.detectors"
@@ -24,6 +28,7 @@ BUILTINS: dict[str, type[Detector]] = {
     cls.name: cls
     for cls in (
         RateRule, PCADetector, InvariantMining, LogClustering, *PYOD_DETECTORS, LogisticDetector, TreeDetector,
+        NextEventLSTM, SequenceAutoencoder, DensityAutoencoder, TwoStage,
     )
 }
 

@@ -17,7 +17,7 @@ from harness.registry import read_yaml
 
 TOP_LEVEL = {
     "experiment", "description", "output", "datasets", "windows", "tasks", "task", "split", "noise", "detectors",
-    "seeds", "threshold", "scoring", "registry", "gate",
+    "seeds", "threshold", "scoring", "registry", "gate", "vocabulary", "vocabularies",
 }
 SCORING_DEFAULTS = {"cooldown": "1h", "bootstrap": 200, "ci_level": 0.95, "bootstrap_unit": "entity"}
 
@@ -35,14 +35,23 @@ class RunConfig:
     seed: int
     threshold: dict
     scoring: dict
+    vocabulary: dict = field(default_factory=lambda: {"kind": "templates"})
 
     def canonical(self) -> dict:
-        """The config as plain JSON-able data, keys sorted on dump."""
-        return {
+        """The config as plain JSON-able data, keys sorted on dump (the default vocabulary is left out)."""
+        out = {
             "dataset": self.dataset, "windows": self.windows, "task": self.task, "split": self.split,
             "noise": self.noise, "detector": self.detector, "seed": self.seed, "threshold": self.threshold,
             "scoring": self.scoring, "code_version": __version__,
         }
+        if self.vocabulary.get("kind", "templates") != "templates":
+            out["vocabulary"] = self.vocabulary
+        return out
+
+    @property
+    def vocabulary_label(self) -> str:
+        """Short name of the event vocabulary."""
+        return vocabulary_label(self.vocabulary)
 
     @property
     def run_id(self) -> str:
@@ -145,6 +154,22 @@ def _canonical_scoring(raw: Any, where: str) -> dict:
     if out["bootstrap_unit"] not in ("entity", "incident"):
         raise ConfigError(f"{where}.bootstrap_unit: must be entity or incident, got {out['bootstrap_unit']!r}")
     return out
+
+
+def vocabulary_label(spec: dict | None) -> str:
+    """'templates', or 'semantic k=16' and the like."""
+    if not spec or spec.get("kind", "templates") == "templates":
+        return "templates"
+    return " ".join([spec["kind"]] + [f"{k}={v}" for k, v in sorted(spec.items()) if k != "kind"])
+
+
+def _canonical_vocabulary(raw: Any, where: str) -> dict:
+    from harness.vocabulary import load_vocabulary_spec
+
+    load_vocabulary_spec(raw, where)
+    if raw is None or raw == "templates" or (isinstance(raw, dict) and raw.get("kind", "templates") == "templates"):
+        return {"kind": "templates"}
+    return dict(raw)
 
 
 def _canonical_noise(raw: Any, where: str) -> dict:
@@ -251,10 +276,14 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
     from harness.gate import gate_settings
 
     gate_settings(doc.get("gate"))
+    if "vocabulary" in doc and "vocabularies" in doc:
+        raise ConfigError("give `vocabulary` or `vocabularies`, not both")
+    vocabs = [_canonical_vocabulary(v, f"vocabularies[{i}]") for i, v in
+              enumerate(_as_list(doc.get("vocabularies", doc.get("vocabulary", "templates"))))]
     runs = [
         RunConfig(dataset=d, windows=w, task=t, split=split, noise=n, detector=det, seed=int(s),
-                  threshold=threshold, scoring=scoring)
-        for d, w, t, n, det, s in itertools.product(datasets, windows, tasks, noises, dets, seeds)
+                  threshold=threshold, scoring=scoring, vocabulary=v)
+        for d, v, w, t, n, det, s in itertools.product(datasets, vocabs, windows, tasks, noises, dets, seeds)
     ]
     out = Path(output) if output else Path(doc.get("output") or (base / f"{name}-out"))
     if not out.is_absolute() and output is None and doc.get("output"):

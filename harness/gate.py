@@ -11,7 +11,7 @@ import pandas as pd
 
 from harness.errors import ConfigError
 
-KEYS = ["dataset", "windows", "task", "noise", "detector"]
+KEYS = ["dataset", "vocabulary", "windows", "task", "noise", "detector"]
 # Metric -> True when higher is better.
 DIRECTION = {
     "auprc": True, "auroc": True, "f1": True, "precision": True, "recall": True,
@@ -77,6 +77,8 @@ def read_results(folder: Path, what: str) -> pd.DataFrame:
 
 
 def _mean_over_seeds(results: pd.DataFrame) -> pd.DataFrame:
+    if "vocabulary" not in results.columns:  # results written before vocabularies were a grid axis
+        results = results.assign(vocabulary="templates")
     num = [c for c in results.columns if c not in KEYS + ["run_id", "seed"] and
            pd.api.types.is_numeric_dtype(results[c])]
     with np.errstate(all="ignore"):

@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 
 from harness.errors import DataError
+from harness.experiment import vocabulary_label
 
 # Headline figures: (record key, column title, better when higher?)
 HEADLINE = [
@@ -47,6 +48,7 @@ def load_results(records: list[dict]) -> pd.DataFrame:
             "run_id": r["run_id"], "dataset": cfg["dataset"],
             "windows": " ".join(f"{k}={v}" for k, v in cfg["windows"].items()),
             "task": " ".join(f"{k}={v}" for k, v in cfg["task"].items()),
+            "vocabulary": vocabulary_label(cfg.get("vocabulary")),
             "noise": cfg["noise"].get("name", "clean"), "noise_level": cfg["noise"].get("level"),
             "detector": cfg["detector"].get("label") or cfg["detector"]["name"], "seed": cfg["seed"],
             "threshold": r["threshold"]["value"],
@@ -62,7 +64,7 @@ def load_results(records: list[dict]) -> pd.DataFrame:
 
 def summarise(results: pd.DataFrame) -> pd.DataFrame:
     """Mean over seeds per (dataset, windows, task, noise, detector); intervals averaged over seeds."""
-    keys = ["dataset", "windows", "task", "noise", "detector"]
+    keys = ["dataset", "vocabulary", "windows", "task", "noise", "detector"]
     num = [c for c in results.columns if c not in keys + ["run_id", "seed", "noise_level"]
            and pd.api.types.is_numeric_dtype(results[c])]
     with np.errstate(all="ignore"):
@@ -89,6 +91,8 @@ def _cell(row: pd.Series, key: str) -> str:
 def headline_table(summary: pd.DataFrame) -> pd.DataFrame:
     """The comparison table a person reads: one row per detector and noise level."""
     out = pd.DataFrame({"dataset": summary["dataset"], "detector": summary["detector"], "noise": summary["noise"]})
+    if summary["vocabulary"].nunique() > 1:
+        out.insert(2, "vocabulary", summary["vocabulary"])
     detect = summary["task"].astype(str).str.contains("name=detect").all()
     for key, title, _ in (HEADLINE_DETECT if detect else HEADLINE):
         if key in summary.columns:
@@ -148,7 +152,9 @@ def robustness_figure(summary: pd.DataFrame):
     fig, axes = plt.subplots(1, len(present), figsize=(5.2 * len(present), 4.2), squeeze=False)
     colours = plt.get_cmap("tab20").colors
     for ax, (key, title) in zip(axes[0], present):
-        for i, (det, g) in enumerate(summary.groupby("detector", sort=False)):
+        series = summary["detector"] if summary["vocabulary"].nunique() <= 1 else \
+            summary["detector"] + " [" + summary["vocabulary"] + "]"
+        for i, (det, g) in enumerate(summary.groupby(series, sort=False)):
             g = g.assign(x=g["noise"].map(xs)).sort_values("x")
             y = g[key].replace([np.inf, -np.inf], np.nan)
             (line,) = ax.plot(g["x"], y, marker="o", label=det, color=colours[(2 * i) % 20 + (2 * i) // 20 % 2])
@@ -239,7 +245,8 @@ def order_like(summary: pd.DataFrame, detectors: list[str], noises: list[str]) -
     d_rank = {d: i for i, d in enumerate(detectors)}
     n_rank = {n: i for i, n in enumerate(noises)}
     key = summary["detector"].map(d_rank).fillna(len(d_rank)) * 1000 + summary["noise"].map(n_rank).fillna(999)
-    return summary.assign(_k=key).sort_values(["dataset", "windows", "task", "_k"], kind="stable").drop(columns="_k")
+    return summary.assign(_k=key).sort_values(["dataset", "vocabulary", "windows", "task", "_k"],
+                                              kind="stable").drop(columns="_k")
 
 
 def write_report(output: Path, title: str, detectors: list[str] | None = None,

@@ -30,6 +30,7 @@ class DatasetData:
     vocab_size: int
     truth: pd.DataFrame
     table_key: str
+    templates: list[str]
 
 
 @dataclass
@@ -117,6 +118,7 @@ class Runner:
         self.progress = progress
         self._datasets: dict[str, DatasetData] = {}
         self._prepared: dict[str, Prepared] = {}
+        self._vocabularies: dict[str, tuple[pd.DataFrame, int]] = {}
         self._fits: dict[str, tuple[np.ndarray, np.ndarray, dict]] = {}
         self._last_scores: dict[str, pd.DataFrame] = {}
 
@@ -134,9 +136,23 @@ class Runner:
                                progress=self.progress)
             events = read_events(res.events)
             truth = truth_incidents(entry, events, files[0].parent)
+            templates = pd.read_csv(res.templates, keep_default_na=False)["template"].astype(str).tolist()
             self._datasets[name] = DatasetData(name, events, int(res.manifest["templates"]), truth,
-                                               res.manifest["key"])
+                                               res.manifest["key"], templates)
         return self._datasets[name]
+
+    def events_for(self, run: RunConfig) -> tuple[pd.DataFrame, int]:
+        """The dataset's events in the run's vocabulary (template ids, or semantic groups) and its size."""
+        data = self.dataset(run.dataset)
+        if run.vocabulary.get("kind", "templates") == "templates":
+            return data.events, data.vocab_size
+        key = json.dumps([run.dataset, run.vocabulary], sort_keys=True)
+        if key not in self._vocabularies:
+            from harness.vocabulary import apply_vocabulary
+
+            # The vocabulary belongs to the dataset, not to a run: a fixed seed.
+            self._vocabularies[key] = apply_vocabulary(data.events, data.templates, run.vocabulary, seed=0)
+        return self._vocabularies[key]
 
     def prepared(self, run: RunConfig) -> Prepared:
         """Windows, truth labels and the split for a run's dataset, windowing, task and split."""
@@ -148,7 +164,8 @@ class Runner:
         key = json.dumps([run.dataset, run.windows, run.task, run.split, seed], sort_keys=True)
         if key not in self._prepared:
             data = self.dataset(run.dataset)
-            ws = build_windows(data.events, data.vocab_size, run.windows)
+            events, vocab_size = self.events_for(run)
+            ws = build_windows(events, vocab_size, run.windows)
             if len(ws) == 0:
                 raise DataError(f"dataset '{run.dataset}': no windows for {run.windows}")
             horizon = pd.Timedelta(run.task["horizon"]) if "horizon" in run.task else None
@@ -192,7 +209,7 @@ class Runner:
             raise DataError(f"no training windows left for '{det.name}' ({det.trains_on} windows of the train split)")
         reads_labels = det.trains_on == "labelled"
         fit_key = json.dumps(
-            [data.table_key, run.windows, run.task if reads_labels else None, run.split, run.detector, run.seed,
+            [data.table_key, run.vocabulary, run.windows, run.task if reads_labels else None, run.split, run.detector, run.seed,
              _digest(train), _digest(rep_labels[train]) if reads_labels else None],
             sort_keys=True,
         )
@@ -282,7 +299,7 @@ def fit_groups(runs: Iterable[RunConfig]) -> list[list[RunConfig]]:
     """Runs that can share windows and fitted models, grouped; groups are independent units of work."""
     groups: dict[str, list[RunConfig]] = {}
     for r in _ordered(runs):
-        key = json.dumps([r.dataset, r.windows, r.task, r.split, r.detector, r.seed], sort_keys=True)
+        key = json.dumps([r.dataset, r.vocabulary, r.windows, r.task, r.split, r.detector, r.seed], sort_keys=True)
         groups.setdefault(key, []).append(r)
     return list(groups.values())
 
@@ -351,7 +368,8 @@ def run_experiment(
 
 def _ordered(runs: Iterable[RunConfig]) -> list[RunConfig]:
     """Runs grouped so that ones sharing data and fitted models follow each other."""
-    return sorted(runs, key=lambda r: (r.dataset, json.dumps(r.windows, sort_keys=True), json.dumps(r.task),
+    return sorted(runs, key=lambda r: (r.dataset, r.vocabulary_label, json.dumps(r.windows, sort_keys=True),
+                                       json.dumps(r.task),
                                        r.detector_label, r.seed, r.noise_name))
 
 

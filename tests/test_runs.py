@@ -201,3 +201,24 @@ def test_random_split_runs_and_warns_in_the_record(tmp_path: Path, home: Path) -
     assert counts["finished"] == 1
     rec = RunStore(exp.output).records()[0]
     assert rec["warnings"] and "random" in rec["warnings"][0].lower()
+
+
+def test_semantic_vocabulary_is_a_grid_axis(tmp_path: Path, home: Path) -> None:
+    exp = load_experiment(_experiment(tmp_path, detectors=["pca"], noise=[{"name": "clean"}],
+                                      vocabularies=["templates", {"kind": "semantic", "k": 6, "epochs": 50}]))
+    assert len(exp.runs) == 2 and len({r.run_id for r in exp.runs}) == 2
+    # The default vocabulary leaves run ids as they were before vocabularies existed.
+    plain = load_experiment(_experiment(tmp_path, detectors=["pca"], noise=[{"name": "clean"}]))
+    assert plain.runs[0].run_id in {r.run_id for r in exp.runs}
+    run_experiment(exp, home, progress=False, track=False)
+    recs = {r["config"].get("vocabulary", {}).get("kind", "templates"): r for r in RunStore(exp.output).records()}
+    assert recs["templates"]["status"] == recs["semantic"]["status"] == "finished"
+    from harness.report import write_report
+
+    table = write_report(exp.output, "vocab")["table"]
+    assert set(table["vocabulary"]) == {"templates", "semantic epochs=50 k=6"}
+
+
+def test_bad_vocabulary_names_the_field(tmp_path: Path) -> None:
+    with pytest.raises(ConfigError, match=r"vocabularies\[1\]\.k"):
+        load_experiment(_experiment(tmp_path, vocabularies=["templates", {"kind": "semantic"}]))

@@ -1,0 +1,193 @@
+"""Two-stage composition: stage one flags anomalous windows, stage two decides which of them look like failures."""
+
+from __future__ import annotations
+
+from typing import Any, ClassVar, Literal
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+from detectors.base import Detector, DetectorParams
+from harness.windows import WindowSet
+
+STAGES = ("stage1", "stage2")
+
+
+class MemberSpec(BaseModel):
+    """One member of a stage: a registered detector name and its parameters."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    name: str
+    params: dict[str, Any] = Field(default_factory=dict)
+
+    @model_validator(mode="before")
+    @classmethod
+    def _known(cls, raw: Any) -> Any:
+        """Check the member exists and its params validate; store its full (canonical) params."""
+        from detectors.registry import available, create
+        from harness.errors import ConfigError
+
+        if not isinstance(raw, dict) or not isinstance(raw.get("name"), str):
+            raise ValueError("expected a mapping {name: <detector>, params: {...}}")
+        name = raw["name"]
+        if name == TwoStage.name:
+            raise ValueError("a two_stage member cannot itself be two_stage")
+        if name not in available():
+            raise ValueError(f"unknown detector '{name}'; known: {', '.join(sorted(available()))}")
+        params = raw.get("params") or {}
+        if not isinstance(params, dict):
+            raise ValueError(f"params of member '{name}' must be a mapping")
+        try:
+            det = create(name, params, seed=0, source="two_stage member")
+        except ConfigError as exc:
+            raise ValueError(str(exc)) from None
+        return {**raw, "params": det.params.model_dump(mode="json")}
+
+
+class TwoStageParams(DetectorParams):
+    """Members of both stages and how their scores are combined."""
+
+    stage1: tuple[MemberSpec, ...] = Field(
+        default_factory=lambda: (MemberSpec(name="pca"),), min_length=1, description="anomaly detectors trained on healthy windows"
+    )
+    stage2: tuple[MemberSpec, ...] = Field(
+        default_factory=lambda: (MemberSpec(name="logistic"),), min_length=1, description="failure detectors trained on labelled windows"
+    )
+    combine: Literal["gated", "product", "stage2_only", "stage1_only"] = Field(
+        "gated", description="how the stage ranks make the final score (see TwoStage)"
+    )
+    gate_quantile: float = Field(0.9, gt=0.0, lt=1.0, description="stage-one rank quantile above which a window is flagged")
+
+
+def ecdf_rank(reference_sorted: np.ndarray, scores: np.ndarray) -> np.ndarray:
+    """Mid-rank of each score within a sorted reference sample, in [0, 1]."""
+    n = len(reference_sorted)
+    lo = np.searchsorted(reference_sorted, scores, side="left")
+    hi = np.searchsorted(reference_sorted, scores, side="right")
+    return (lo + hi) / (2.0 * n)
+
+
+class TwoStage(Detector):
+    """Two stages of any registered detectors, each stage an ensemble averaged on ranks.
+
+    Declares ``trains_on = 'labelled'``: the harness passes the training windows with
+    reported labels 1 or 0 (-1 excluded) and the two-stage detector selects per stage:
+
+    - Stage one ("is it anomalous?"): members are fitted on the windows labelled 0
+      (healthy by the reported labels); a member that itself trains on labels gets all
+      labelled windows with their labels.
+    - Stage two ("does it look like a failure?"): members that train on labels get all
+      labelled windows; an unsupervised member is fitted on the windows labelled 1
+      (failing) and its score is negated, so closeness to failures ranks high.
+
+    Member ``i`` of stage ``s`` uses seed ``seed + 100 * s + i``. Each member's score is
+    turned into a rank in [0, 1] by the mid-rank empirical CDF of its scores on all
+    labelled training windows (fixed at fit time, so scoring is independent of the batch),
+    and a stage's score is the mean rank of its members: ``r1`` and ``r2``. A window is
+    *flagged* when ``r1`` reaches ``gate``, the ``gate_quantile`` of ``r1`` over the
+    labelled training windows. Final score by ``combine``:
+
+    - ``gated`` (default): flagged windows score ``1 + r2`` (ordered by stage two, above
+      every unflagged window); unflagged windows score ``r1 * r2`` (below 1).
+    - ``product``: ``r1 * r2``.
+    - ``stage2_only``: ``r2``; ``stage1_only``: ``r1`` (ablations).
+    """
+
+    name: ClassVar[str] = "two_stage"
+    reads: ClassVar[str] = "counts"
+    trains_on: ClassVar[str] = "labelled"
+    Params: ClassVar[type[TwoStageParams]] = TwoStageParams
+    supports_state: ClassVar[bool] = True
+
+    def _members(self) -> list[tuple[int, int, Detector]]:
+        from detectors.registry import create
+
+        out = []
+        for s, stage in enumerate(STAGES, 1):
+            for i, spec in enumerate(getattr(self.params, stage)):
+                out.append((s, i, create(spec.name, spec.params, seed=self.seed + 100 * s + i, source="two_stage")))
+        return out
+
+    def _fit(self, windows: WindowSet, labels: np.ndarray | None) -> None:
+        if labels is None:
+            raise self.error("trains on labelled windows but no labels were given")
+        used = np.flatnonzero(labels >= 0)
+        healthy = np.flatnonzero(labels == 0)
+        failing = np.flatnonzero(labels == 1)
+        ref_ws = windows.subset(used)
+        self.members_ = self._members()
+        self.refs_: list[np.ndarray] = []
+        self.signs_: list[float] = []
+        for s, i, det in self.members_:
+            sign = 1.0
+            if det.trains_on == "labelled":
+                det.fit(ref_ws, labels[used])
+            elif s == 1:
+                det.fit(windows.subset(healthy))
+            else:
+                det.fit(windows.subset(failing))
+                sign = -1.0
+            self.signs_.append(sign)
+            self.refs_.append(np.sort(sign * det.score(ref_ws)))
+        r1, _ = self._stage_ranks(ref_ws)
+        self.gate_ = float(np.quantile(r1, self.params.gate_quantile))
+
+    def _stage_ranks(self, windows: WindowSet) -> tuple[np.ndarray, np.ndarray]:
+        """Mean member rank of stage one and of stage two for each window."""
+        sums = {1: np.zeros(len(windows)), 2: np.zeros(len(windows))}
+        n = {1: 0, 2: 0}
+        for (s, _, det), ref, sign in zip(self.members_, self.refs_, self.signs_):
+            sums[s] += ecdf_rank(ref, sign * det.score(windows))
+            n[s] += 1
+        return sums[1] / n[1], sums[2] / n[2]
+
+    def _score(self, windows: WindowSet) -> np.ndarray:
+        r1, r2 = self._stage_ranks(windows)
+        mode = self.params.combine
+        if mode == "stage1_only":
+            return r1
+        if mode == "stage2_only":
+            return r2
+        if mode == "product":
+            return r1 * r2
+        return np.where(r1 >= self.gate_, 1.0 + r2, r1 * r2)
+
+    def stage_scores(self, windows: WindowSet) -> dict[str, np.ndarray]:
+        """Stage-one and stage-two ranks and the flag of each window (for inspection)."""
+        self._check_windows(windows, fitted=True)
+        r1, r2 = self._stage_ranks(windows)
+        return {"stage1": r1, "stage2": r2, "flagged": r1 >= self.gate_}
+
+    def info(self) -> dict[str, Any]:
+        """The gate and each member's own facts."""
+        if not hasattr(self, "gate_"):
+            return {}
+        return {
+            "gate": self.gate_,
+            "members": [{"stage": s, "name": det.name, "info": det.info()} for s, _, det in self.members_],
+        }
+
+    def _state(self) -> dict[str, Any]:
+        out: dict[str, Any] = {"gate": self.gate_, "vocab": int(self.vocab_size or 0)}
+        for (s, i, det), ref, sign in zip(self.members_, self.refs_, self.signs_):
+            if not det.supports_state:
+                raise self.error(f"member '{det.name}' of stage {s} does not support save/load")
+            key = f"m{s}.{i}."
+            out[key + "ref"] = ref
+            out[key + "sign"] = sign
+            for k, v in det.state().items():
+                out[key + "s." + k] = v
+        return out
+
+    def _load_state(self, state: dict[str, Any]) -> None:
+        vocab = int(state["vocab"])
+        self.gate_ = float(state["gate"])
+        self.members_, self.refs_, self.signs_ = [], [], []
+        for s, i, det in self._members():
+            key = f"m{s}.{i}."
+            inner = {k[len(key) + 2:]: v for k, v in state.items() if k.startswith(key + "s.")}
+            loaded = type(det).from_state(inner, det.params, det.seed, vocab)
+            self.members_.append((s, i, loaded))
+            self.refs_.append(np.asarray(state[key + "ref"], dtype=np.float64))
+            self.signs_.append(float(state[key + "sign"]))
