@@ -125,7 +125,7 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     """Write a simulated fleet's logs and incidents."""
     from harness.simulate import cli_simulate
 
-    return cli_simulate(args.config, args.out, seed=args.seed, progress=True)
+    return cli_simulate(args.config, args.out, seed=args.seed, progress=True, per_node=args.per_node)
 
 
 def cmd_run(args: argparse.Namespace) -> int:
@@ -258,6 +258,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("config", metavar="CONFIG", nargs="?", help="scenario YAML (default: built-in scenario)")
     sp.add_argument("--out", required=True, metavar="DIR")
     sp.add_argument("--seed", type=int)
+    sp.add_argument("--per-node", action="store_true", help="also write one log file per node under nodes/")
 
     sp = verb("run", cmd_run, "run or resume an experiment grid (every run recorded)",
               "logtrial run reports/bgl-2k/experiment.yaml\n"

@@ -466,8 +466,8 @@ def _progress(total: int, enabled: bool):
     return tqdm(total=total, unit="day", desc="simulate", file=sys.stderr)
 
 
-def generate(scenario: Scenario, out_dir: Path, progress: bool = False) -> SimResult:
-    """Write a simulated fleet's log, truth and config into out_dir."""
+def generate(scenario: Scenario, out_dir: Path, progress: bool = False, per_node: bool = False) -> SimResult:
+    """Write a simulated fleet's log, truth and config into out_dir (with ``per_node``, also nodes/<host>.log)."""
     sc = load_scenario(scenario) if not isinstance(scenario, Scenario) else scenario
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -483,11 +483,14 @@ def generate(scenario: Scenario, out_dir: Path, progress: bool = False) -> SimRe
     n_lines = 0
     used = np.zeros(len(TEMPLATES), dtype=np.int64)
     bar = _progress(n_days, progress)
+    node_files = _NodeFiles(out_dir, host_names(sc.nodes)) if per_node else None
     with open(log_part, "wb") as log, open(tpl_raw, "wb") as ftpl, open(inc_raw, "wb") as finc:
         for day in range(n_days):
             t, node, tpl, par, inc = maker.events(day)
             data = maker.lines(day, t, node, tpl, par, maker.pids(node, tpl, t))
             log.write(data)
+            if node_files is not None:
+                node_files.write(data, node)
             digest.update(data)
             ftpl.write(tpl.astype("<i2").tobytes())
             finc.write(inc.astype("<i4").tobytes())
@@ -498,6 +501,8 @@ def generate(scenario: Scenario, out_dir: Path, progress: bool = False) -> SimRe
     if bar is not None:
         bar.close()
     os.replace(log_part, log_path)
+    if node_files is not None:
+        node_files.publish()
     _write_npy(tpl_raw, out_dir / "line_templates.npy", np.dtype("<i2"), n_lines)
     _write_npy(inc_raw, out_dir / "line_incidents.npy", np.dtype("<i4"), n_lines)
 
@@ -514,6 +519,32 @@ def generate(scenario: Scenario, out_dir: Path, progress: bool = False) -> SimRe
         others=int((incidents["kind"] == "other").sum()), templates_used=int((used > 0).sum()),
         log_sha256=digest.hexdigest(),
     )
+
+
+class _NodeFiles:
+    """One log file per node under ``nodes/``, written beside the fleet log (same lines, same order)."""
+
+    def __init__(self, out_dir: Path, hosts: list[str]):
+        self.folder = out_dir / "nodes"
+        self.folder.mkdir(parents=True, exist_ok=True)
+        self.hosts = hosts
+        self.handles = [open(self.folder / f"{h}.log.part", "wb") for h in hosts]
+
+    def write(self, data: bytes, node: np.ndarray) -> None:
+        """Append one day's lines, each to its node's file."""
+        lines = data.split(b"\n")[: len(node)]
+        order = np.argsort(node, kind="stable")
+        bounds = np.searchsorted(node[order], np.arange(len(self.hosts) + 1))
+        for i, fh in enumerate(self.handles):
+            sel = order[bounds[i]: bounds[i + 1]]
+            if len(sel):
+                fh.write(b"\n".join(lines[j] for j in sel) + b"\n")
+
+    def publish(self) -> None:
+        """Close the files and give them their final names."""
+        for h, fh in zip(self.hosts, self.handles):
+            fh.close()
+            os.replace(self.folder / f"{h}.log.part", self.folder / f"{h}.log")
 
 
 def _write_text(path: Path, text: str) -> None:
@@ -544,12 +575,13 @@ def ensure_generated(scenario: Scenario, cache_dir: Path, progress: bool = False
     return final
 
 
-def cli_simulate(config_path: str | None, out: str, seed: int | None = None, progress: bool = False) -> int:
+def cli_simulate(config_path: str | None, out: str, seed: int | None = None, progress: bool = False,
+                 per_node: bool = False) -> int:
     """Run `logtrial simulate`: generate the scenario into `out`, print a summary, return the exit code."""
     sc = load_scenario(config_path)
     if seed is not None:
         sc = load_scenario({**sc.canonical(), "seed": seed})
-    res = generate(sc, Path(out), progress=progress)
+    res = generate(sc, Path(out), progress=progress, per_node=per_node)
     print(
         f"wrote {res.lines:,} lines from {sc.nodes} nodes over {sc.days:g} days to {res.log_path}\n"
         f"incidents: {res.failures} failures, {res.others} other anomalies -> {res.incidents_path}\n"

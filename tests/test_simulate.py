@@ -341,3 +341,21 @@ def test_bad_config_file_names_the_file(tmp_path: Path) -> None:
     path.write_text("nodes: 4\nseed: [4\n")
     with pytest.raises(ConfigError, match=r"scenario\.yaml: line 3"):
         load_scenario(path)
+
+
+def test_per_node_files_hold_exactly_each_nodes_lines(tmp_path: Path) -> None:
+    # The per-node layout is the fleet log split by the syslog host field, order kept.
+    cfg = {**BUSY, "days": 4, "nodes": 5}
+    res = generate(load_scenario(cfg), tmp_path / "sim", per_node=True)
+    fleet = res.log_path.read_text().splitlines()
+    by_host: dict[str, list[str]] = {}
+    for line in fleet:
+        by_host.setdefault(line.split(" ", 2)[1], []).append(line)
+    files = sorted((tmp_path / "sim" / "nodes").glob("*.log"))
+    assert [f.stem for f in files] == sorted(by_host)
+    for f in files:
+        assert f.read_text().splitlines() == by_host[f.stem]
+    assert not list((tmp_path / "sim").rglob("*.part"))
+    # The single-file output does not change when per-node files are also written.
+    plain = generate(load_scenario(cfg), tmp_path / "plain")
+    assert sha256(plain.log_path) == sha256(res.log_path)
