@@ -12,15 +12,11 @@ from torch import nn
 from detectors.base import Detector
 from detectors.torch_train import (
     TorchParams,
-    TrainLog,
     arrays_to_weights,
     batch_slices,
-    choose_device,
+    fit_sequence_model,
     histories,
-    sample_windows,
-    split_windows,
     torch_session,
-    train,
     unique_rows,
     weights_to_arrays,
 )
@@ -93,25 +89,8 @@ class NextEventLSTM(Detector):
         return NextEventNet(vocab, p.embedding, p.hidden, p.layers)
 
     def _fit(self, windows: WindowSet, labels: np.ndarray | None) -> None:
-        p = self.params
-        rng = np.random.default_rng(self.seed)
-        vocab = windows.vocab_size
-        keep = sample_windows(len(windows), p.max_train, rng)
-        ws = windows.subset(keep) if len(keep) < len(windows) else windows
-        fit_idx, val_idx = split_windows(len(ws), p.val_share, rng)
-        with torch_session(self.seed, p.threads):
-            device = choose_device(p.device)
-            self.net_ = self._build(vocab).to(device)
-            parts = []
-            for idx in (fit_idx, val_idx):
-                sub = ws.subset(idx)
-                h, y, c = distinct_pairs(sub.seq_values, sub.seq_offsets, p.history, vocab)
-                parts.append(tuple(torch.from_numpy(a).to(device) for a in (h, y, c.astype(np.float32))))
-            if parts[0][0].shape[0] == 0:
-                raise self.error("training windows hold no events")
-            self.log_: TrainLog = train(self.net_, weighted_ce, parts[0], parts[1] if len(val_idx) else None, p,
-                                        self.seed, what="next_event", weight_index=2)
-            self.net_.cpu()
+        h, vocab = self.params.history, windows.vocab_size
+        fit_sequence_model(self, windows, lambda v, o: distinct_pairs(v, o, h, vocab), weighted_ce)
 
     def top_g_hits(self, hist: np.ndarray, target: np.ndarray) -> np.ndarray:
         """Whether each target event is among the top-g predictions for its history row."""

@@ -13,15 +13,11 @@ from torch.nn.utils.rnn import pack_padded_sequence
 from detectors.base import Detector
 from detectors.torch_train import (
     TorchParams,
-    TrainLog,
     arrays_to_weights,
     batch_slices,
-    choose_device,
+    fit_sequence_model,
     ragged_chunks,
-    sample_windows,
-    split_windows,
     torch_session,
-    train,
     unique_rows,
     weights_to_arrays,
 )
@@ -127,26 +123,8 @@ class SequenceAutoencoder(Detector):
         return SeqAutoencoderNet(vocab, p.embedding, p.hidden, p.latent)
 
     def _fit(self, windows: WindowSet, labels: np.ndarray | None) -> None:
-        p = self.params
-        rng = np.random.default_rng(self.seed)
-        vocab = windows.vocab_size
-        keep = sample_windows(len(windows), p.max_train, rng)
-        ws = windows.subset(keep) if len(keep) < len(windows) else windows
-        fit_idx, val_idx = split_windows(len(ws), p.val_share, rng)
-        with torch_session(self.seed, p.threads):
-            device = choose_device(p.device)
-            self.net_ = self._build(vocab).to(device)
-            parts = []
-            for idx in (fit_idx, val_idx):
-                sub = ws.subset(idx)
-                rows, lens, counts = distinct_chunks(sub.seq_values, sub.seq_offsets, p.chunk, vocab)
-                parts.append(tuple(torch.from_numpy(a).to(device) for a in (rows, lens, counts.astype(np.float32))))
-            if parts[0][0].shape[0] == 0:
-                raise self.error("training windows hold no events")
-            self.log_: TrainLog = train(self.net_, weighted_reconstruction, parts[0],
-                                        parts[1] if parts[1][0].shape[0] else None, p, self.seed, what="seq_ae",
-                                        weight_index=2)
-            self.net_.cpu()
+        chunk, vocab = self.params.chunk, windows.vocab_size
+        fit_sequence_model(self, windows, lambda v, o: distinct_chunks(v, o, chunk, vocab), weighted_reconstruction)
 
     def chunk_losses(self, mat: np.ndarray, lens: np.ndarray) -> np.ndarray:
         """Summed per-event reconstruction loss of each padded chunk."""

@@ -302,3 +302,37 @@ def load_weights(model: torch.nn.Module, path: str | Path) -> None:
     sd = torch.load(Path(path), map_location="cpu", weights_only=True)
     model.load_state_dict(sd, strict=True)
     model.eval()
+
+
+def fit_sequence_model(
+    detector,
+    windows,
+    encode: Callable[[np.ndarray, np.ndarray], tuple[np.ndarray, ...]],
+    loss_fn: LossFn,
+) -> None:
+    """Fit ``detector.net_`` on training examples encoded from the windows' ragged sequences.
+
+    Shared by the sequence detectors: a seeded sample of at most ``max_train`` windows is
+    split into fit and validation windows, ``encode(values, offsets)`` turns each part into
+    distinct examples whose last array holds their counts (the loss weights), and the
+    model trains with early stopping on the validation part. Sets ``net_`` and ``log_``.
+    """
+    p = detector.params
+    rng = np.random.default_rng(detector.seed)
+    keep = sample_windows(len(windows), p.max_train, rng)
+    ws = windows.subset(keep) if len(keep) < len(windows) else windows
+    fit_idx, val_idx = split_windows(len(ws), p.val_share, rng)
+    with torch_session(detector.seed, p.threads):
+        device = choose_device(p.device)
+        detector.net_ = detector._build(windows.vocab_size).to(device)
+        parts = []
+        for idx in (fit_idx, val_idx):
+            sub = ws.subset(idx)
+            *arrays, counts = encode(sub.seq_values, sub.seq_offsets)
+            parts.append(tuple(torch.from_numpy(a).to(device) for a in (*arrays, counts.astype(np.float32))))
+        if parts[0][0].shape[0] == 0:
+            raise detector.error("training windows hold no events")
+        val = parts[1] if len(val_idx) and parts[1][0].shape[0] else None
+        detector.log_ = train(detector.net_, loss_fn, parts[0], val, p, detector.seed, what=detector.name,
+                              weight_index=len(parts[0]) - 1)
+        detector.net_.cpu()

@@ -5,7 +5,6 @@ from __future__ import annotations
 import argparse
 import os
 import sys
-import textwrap
 from pathlib import Path
 
 from harness import __version__

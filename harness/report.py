@@ -175,7 +175,7 @@ def robustness_figure(summary: pd.DataFrame):
     return fig
 
 
-def lead_time_figure(records: list[dict], noise: str):
+def lead_time_figure(records: list[dict], noise: str, order: list[str] | None = None):
     """Distribution of lead times (hours) of predicted failures per detector at one noise level."""
     import matplotlib
 
@@ -188,7 +188,8 @@ def lead_time_figure(records: list[dict], noise: str):
             det = r["config"]["detector"].get("label") or r["config"]["detector"]["name"]
             data.setdefault(det, []).extend(r.get("lead_times_h") or [])
     fig, ax = plt.subplots(figsize=(max(6, 0.7 * len(data) + 2), 4.2))
-    names = list(data)
+    rank = {d: i for i, d in enumerate(order or [])}
+    names = sorted(data, key=lambda d: (rank.get(d, len(rank)), d))
     ax.boxplot([data[n] if data[n] else [np.nan] for n in names], showfliers=True)
     ax.set_xticks(range(1, len(names) + 1), names, rotation=35, ha="right")
     ax.set_ylabel("lead time before failure (hours)")
@@ -198,7 +199,7 @@ def lead_time_figure(records: list[dict], noise: str):
     return fig
 
 
-def pr_figure(records: list[dict], store, noise: str):
+def pr_figure(records: list[dict], store, noise: str, order: list[str] | None = None):
     """Precision-recall curves on the test windows per detector (first seed) at one noise level."""
     import matplotlib
 
@@ -206,9 +207,16 @@ def pr_figure(records: list[dict], store, noise: str):
     import matplotlib.pyplot as plt
     from sklearn.metrics import precision_recall_curve
 
-    fig, ax = plt.subplots(figsize=(6, 4.6))
+    fig, ax = plt.subplots(figsize=(6.4, 4.8))
+    ax.set_prop_cycle(color=plt.get_cmap("tab20").colors)
+    rank = {d: i for i, d in enumerate(order or [])}
     seen = set()
-    for r in sorted((r for r in records if r.get("status") == "finished"), key=lambda r: r["config"]["seed"]):
+
+    def position(r: dict) -> tuple:
+        det = r["config"]["detector"].get("label") or r["config"]["detector"]["name"]
+        return rank.get(det, len(rank)), det, r["config"]["seed"]
+
+    for r in sorted((r for r in records if r.get("status") == "finished"), key=position):
         det = r["config"]["detector"].get("label") or r["config"]["detector"]["name"]
         if r["config"]["noise"].get("name", "clean") != noise or det in seen:
             continue
@@ -265,8 +273,10 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
                                                                          float_format="%.6g")
     summary.to_csv(out / "summary.csv", index=False, float_format="%.6g")
     first_noise = summary["noise"].iloc[0]
-    figs = {"robustness.png": robustness_figure(summary), "lead_times.png": lead_time_figure(records, first_noise),
-            "pr_curves.png": pr_figure(records, store, first_noise)}
+    figs = {"robustness.png": robustness_figure(summary)}
+    if not summary["task"].astype(str).str.contains("name=detect").all():  # lead times exist only when predicting
+        figs["lead_times.png"] = lead_time_figure(records, first_noise, list(summary["detector"].drop_duplicates()))
+    figs["pr_curves.png"] = pr_figure(records, store, first_noise, list(summary["detector"].drop_duplicates()))
     pngs = {name: _png(f) for name, f in figs.items()}
     for name, blob in pngs.items():
         (out / name).write_bytes(blob)
@@ -276,7 +286,7 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
     md = [f"# {title}", "", note, "", to_markdown(table), ""]
     if failed:
         md += [f"{len(failed)} run(s) failed:", ""] + [f"- `{r['run_id']}`: {r.get('error', '')}" for r in failed] + [""]
-    md += ["![robustness](robustness.png)", "", "![lead times](lead_times.png)", "", "![PR curves](pr_curves.png)", ""]
+    md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs]
     (out / "report.md").write_text("\n".join(md))
     imgs = "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,{base64.b64encode(b).decode()}">'
                    f"</figure>" for n, b in pngs.items())

@@ -389,7 +389,6 @@ def plan_fleet(sc: "Scenario") -> Plan:
     rng = np.random.default_rng(np.random.SeedSequence(sc.seed, spawn_key=(0,)))
     t0 = sc.start_ms
     t1 = sc.end_ms
-    years = (t1 - t0) / (365.25 * MS_DAY)
     n_nodes = sc.nodes
     sim = sc.anomalies.decoy_similarity
     fcfg = sc.failures

@@ -35,7 +35,7 @@ def test_bgl_2k_reference_regenerates_exactly(loghub_dir: Path, tmp_path: Path, 
     monkeypatch.setenv("LOGTRIAL_MIRROR", str(loghub_dir))
     committed, fresh = _regenerate("bgl-2k", tmp_path, home)
     assert len(fresh) == len(committed) == 22
-    pd.testing.assert_frame_equal(fresh, committed, check_exact=True)
+    pd.testing.assert_frame_equal(fresh, committed, check_exact=True, check_dtype=False)
 
 
 def test_demo_reference_regenerates_exactly_for_two_detectors(tmp_path: Path, home: Path) -> None:
@@ -43,7 +43,7 @@ def test_demo_reference_regenerates_exactly_for_two_detectors(tmp_path: Path, ho
     # on reported labels) over every noise level and seed cover the label-dependent paths.
     committed, fresh = _regenerate("demo", tmp_path, home, {"rate_rule", "logistic"})
     assert len(fresh) == len(committed) > 0
-    pd.testing.assert_frame_equal(fresh, committed, check_exact=True)
+    pd.testing.assert_frame_equal(fresh, committed, check_exact=True, check_dtype=False)
 
 
 def test_reference_experiments_are_committed_with_results() -> None:
