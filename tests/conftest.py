@@ -92,3 +92,20 @@ def windows_from_counts(counts, labels=None):
 def make_windows():
     """Builds a WindowSet from a count matrix (and optional labels), for detector tests."""
     return windows_from_counts
+
+
+def relay_registry(name: str, generator: str) -> str:
+    """A registry YAML with one small simulated radar-relay fleet (ours, invented) for fast grids."""
+    return f"""
+datasets:
+  {name}:
+    system: RadarRelay (simulated, small)
+    generator: {generator}
+    logs: [fleet.log]
+    format:
+      regex: '^(?P<ts>\\d{{4}}-\\d\\d-\\d\\dT\\d\\d:\\d\\d:\\d\\d\\.\\d{{3}}Z) (?P<host>\\S+) (?P<daemon>[\\w.-]+)\\[(?P<pid>\\d+)\\]: (?P<content>.*)$'
+      timestamp: {{fields: [ts], format: "%Y-%m-%dT%H:%M:%S.%fZ"}}
+      entity: host
+    labels: {{scheme: incidents, file: incidents.csv}}
+    miner: {{kind: drain, masks: ['\\d+(?:\\.\\d+)*'], similarity: 0.5, depth: 4}}
+"""

@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from conftest import relay_registry
 import yaml
 
 from harness.cli import main
@@ -21,20 +22,7 @@ from harness.runs import Runner, RunStore, fit_groups, run_experiment
 distributed = pytest.importorskip("distributed")
 
 # A small simulated fleet (ours, invented) so that each grid runs in seconds.
-SMALL_REGISTRY = """
-datasets:
-  relay-tiny:
-    system: RadarRelay (simulated, tiny)
-    generator: {nodes: 8, days: 30, seed: 5, line_rate: 2.0,
-                failures: {rate_per_node_year: 14.0, lead_time_hours: [4, 48], precursor_visibility: 1.0}}
-    logs: [fleet.log]
-    format:
-      regex: '^(?P<ts>\\d{4}-\\d\\d-\\d\\dT\\d\\d:\\d\\d:\\d\\d\\.\\d{3}Z) (?P<host>\\S+) (?P<daemon>[\\w.-]+)\\[(?P<pid>\\d+)\\]: (?P<content>.*)$'
-      timestamp: {fields: [ts], format: "%Y-%m-%dT%H:%M:%S.%fZ"}
-      entity: host
-    labels: {scheme: incidents, file: incidents.csv}
-    miner: {kind: drain, masks: ['\\d+(?:\\.\\d+)*'], similarity: 0.5, depth: 4}
-"""
+SMALL_REGISTRY = relay_registry("relay-tiny", "{nodes: 8, days: 30, seed: 5, line_rate: 2.0, failures: {rate_per_node_year: 14.0, lead_time_hours: [4, 48], precursor_visibility: 1.0}}")
 
 TIMING_KEYS = ("fit_s", "score_s", "total_s")
 

@@ -7,6 +7,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from conftest import relay_registry
 
 from harness.cli import main
 from harness.errors import ConfigError
@@ -14,20 +15,7 @@ from harness.experiment import load_experiment
 from harness.runs import RunStore, run_experiment
 
 # A small simulated fleet (ours, invented) so that a whole grid runs in seconds.
-SMALL_REGISTRY = """
-datasets:
-  relay-small:
-    system: RadarRelay (simulated, small)
-    generator: {nodes: 10, days: 45, seed: 11, line_rate: 2.0,
-                failures: {rate_per_node_year: 12.0, lead_time_hours: [4, 72], precursor_visibility: 1.0}}
-    logs: [fleet.log]
-    format:
-      regex: '^(?P<ts>\\d{4}-\\d\\d-\\d\\dT\\d\\d:\\d\\d:\\d\\d\\.\\d{3}Z) (?P<host>\\S+) (?P<daemon>[\\w.-]+)\\[(?P<pid>\\d+)\\]: (?P<content>.*)$'
-      timestamp: {fields: [ts], format: "%Y-%m-%dT%H:%M:%S.%fZ"}
-      entity: host
-    labels: {scheme: incidents, file: incidents.csv}
-    miner: {kind: drain, masks: ['\\d+(?:\\.\\d+)*'], similarity: 0.5, depth: 4}
-"""
+SMALL_REGISTRY = relay_registry("relay-small", "{nodes: 10, days: 45, seed: 11, line_rate: 2.0, failures: {rate_per_node_year: 12.0, lead_time_hours: [4, 72], precursor_visibility: 1.0}}")
 
 
 def _experiment(tmp_path: Path, **over) -> Path:
