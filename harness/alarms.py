@@ -11,15 +11,19 @@ Rules (one set for every detector)
   starts a new alarm; simultaneous alerts of one entity are always one alarm
   (also with a zero cool-down, which otherwise merges nothing).
 - **Matching** (same entity, or any entity for an incident whose entity is ""
-  or "*", i.e. fleet-wide): an alarm *predicts* failure F when its time lies in
-  ``[F.start - horizon, F.start)``, *detects* F when the window of its first
-  alert overlaps F (window ``[w_start, time)`` meets ``[F.start, F.end]``), so a
-  short failure inside one window is detected by that window's alert. With no
-  horizon (the detect task) nothing is predicted, only detected.
+  or "*", i.e. fleet-wide): an alarm is *active* from its first to its last
+  alert. It *predicts* failure F when it is active at some moment of
+  ``[F.start - horizon, F.start)`` (an alarm that began earlier and is still
+  going counts, with its warning taken from the start of the horizon); it
+  *detects* F when its windows (``[w_start, last_time)``) meet ``[F.start, F.end]``,
+  so a short failure inside one window is detected by that window's alert. With
+  no horizon (the detect task) nothing is predicted, only detected.
 - **Alarm kinds**: ``predicted`` or ``detected`` (true alarms; an alarm that
   both predicts one failure and detects another is ``predicted``), else
-  ``nonfailure`` when its time is at or after ``O.start - horizon`` and its first
-  window starts no later than ``O.end`` for a non-failure anomaly O, else ``false``. ``matched_id`` is the matched incident with the
+  ``nonfailure`` when it is active at or after ``O.start - horizon`` and its first
+  window starts no later than ``O.end`` for a non-failure anomaly O, else ``false``.
+- **Lead time** of a predicted failure: ``F.start`` minus the earliest moment an
+  alarm was active within its horizon. ``matched_id`` is the matched incident with the
   earliest start.
 - **False alarms per predicted failure** = (false + non-failure alarms) /
   predicted failures: a non-failure alarm still pages an operator for no
@@ -205,13 +209,15 @@ def match_alarms(
     inc = _incident_arrays(incidents)
     t = times_ns(alarms["time"]) if len(alarms) else np.zeros(0, np.int64)
     w = times_ns(alarms["window_start"]) if "window_start" in alarms and len(alarms) else t
+    last = times_ns(alarms["last_time"]) if "last_time" in alarms and len(alarms) else t
     a_idx, i_idx = _pairs(alarms["entity"].fillna("").astype(str).to_numpy(dtype=object), inc["entity"])
-    ta, wa, s, e = t[a_idx], w[a_idx], inc["start"][i_idx], inc["end"][i_idx]
+    ta, wa, tl, s, e = t[a_idx], w[a_idx], last[a_idx], inc["start"][i_idx], inc["end"][i_idx]
     is_fail = inc["kind"][i_idx] == "failure"
-    pred = is_fail & (ta >= s - h) & (ta < s)
-    # Detected: the first alert's window [w, t) meets [s, e] (an instant alert: t in [s, e]).
-    det = is_fail & (wa <= e) & ((ta > s) | ((ta == s) & (wa == ta)))
-    nonf = ~is_fail & (ta >= s - h) & (wa <= e)
+    # Predicted: the alarm is active (first..last alert) at some moment of [s - h, s).
+    pred = is_fail & (ta < s) & (tl >= s - h)
+    # Detected: the alarm's windows [w, last) meet [s, e] (an instant alert: its time in [s, e]).
+    det = is_fail & (wa <= e) & ((tl > s) | ((tl == s) & (wa == tl)))
+    nonf = ~is_fail & (tl >= s - h) & (wa <= e)
     rank = np.where(pred, 0, np.where(det, 1, np.where(nonf, 2, 3)))
     hit = rank < 3
     pairs = pd.DataFrame({"a": a_idx[hit], "rank": rank[hit], "start": s[hit], "i": i_idx[hit]})
@@ -227,7 +233,8 @@ def match_alarms(
 
     n_inc = len(inc["start"])
     first_pred = np.full(n_inc, np.iinfo(np.int64).max, dtype=np.int64)
-    np.minimum.at(first_pred, i_idx[pred], ta[pred])
+    # Warned from the alarm's start, or from the start of the horizon when the alarm began earlier.
+    np.minimum.at(first_pred, i_idx[pred], np.maximum(ta[pred], (s - h)[pred]))
     detected = np.zeros(n_inc, dtype=bool)
     detected[i_idx[det]] = True
     per_incident = pd.DataFrame(

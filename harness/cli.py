@@ -158,7 +158,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     from harness.report import compact, to_text, write_report
 
     exp = load_experiment(Path(args.experiment), output=args.out)
-    paths = write_report(exp.output, exp.name, *experiment_order(exp))
+    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs})
     print(to_text(compact(paths["table"])))
     print(f"\nreport: {paths['markdown']}\n        {paths['html']}\n        {paths['csv']}")
     print(f"tracking: mlflow ui --backend-store-uri sqlite:///{(exp.output / 'mlflow.db').resolve()}")
@@ -190,14 +190,20 @@ def cmd_gate(args: argparse.Namespace) -> int:
         counts = run_experiment(fresh_exp, home_dir(), progress=not args.quiet, track=False)
         if counts["failed"]:
             print(f"gate: {counts['failed']} run(s) failed; see {out / 'runs'}", file=sys.stderr)
-        load_results(RunStore(out).records()).to_csv(out / "results.csv", index=False, float_format="%.6g")
+        wanted = {r.run_id for r in fresh_exp.runs}
+        records = [r for r in RunStore(out).records() if r["run_id"] in wanted]
+        load_results(records).to_csv(out / "results.csv", index=False, float_format="%.6g")
         fresh = read_results(out, "fresh results")  # same rounding as the committed reference
         where = out
     result = compare(reference, fresh, metrics, tol, rel)
+    failed = 0 if args.fresh else counts["failed"]
     print(f"gate {exp.name}: reference {reference_dir / 'results.csv'}  vs  fresh {where}")
     print(format_table(result, only_moved=not args.all))
     n = len(result.table)
     bad = result.regressions
+    if failed:
+        print(f"\nFAIL: {failed} run(s) of the fresh grid failed (see the run records)")
+        return 1
     if bad.empty:
         print(f"\nPASS: {n} figures compared, no regression (tolerance {tol:g} or the reference interval)")
         return 0

@@ -36,7 +36,7 @@ def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True) 
           f"{len(experiment_order(exp)[1])} noise levels x seeds", flush=True)
     counts = run_experiment(exp, home, progress=True, track=track)
     print("[4/4] writing the report", flush=True)
-    paths = write_report(exp.output, exp.name, *experiment_order(exp))
+    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs})
     print()
     print(to_text(compact(paths["table"])))
     print(f"\n{counts['finished']} runs finished, {counts['failed']} failed, {counts['skipped']} reused from before; "

@@ -36,6 +36,7 @@ class RunConfig:
     threshold: dict
     scoring: dict
     vocabulary: dict = field(default_factory=lambda: {"kind": "templates"})
+    dataset_entry: str = ""
 
     def canonical(self) -> dict:
         """The config as plain JSON-able data, keys sorted on dump (the default vocabulary is left out)."""
@@ -44,6 +45,8 @@ class RunConfig:
             "noise": self.noise, "detector": self.detector, "seed": self.seed, "threshold": self.threshold,
             "scoring": self.scoring, "code_version": __version__,
         }
+        if self.dataset_entry:
+            out["dataset_entry"] = self.dataset_entry
         if self.vocabulary.get("kind", "templates") != "templates":
             out["vocabulary"] = self.vocabulary
         return out
@@ -117,7 +120,7 @@ def _canonical_split(raw: Any, where: str) -> dict:
     raw = raw or {}
     if not isinstance(raw, dict):
         raise ConfigError(f"{where}: expected a mapping")
-    allowed = {"kind", "fractions", "embargo", "seed"}
+    allowed = {"kind", "fractions", "embargo"}
     unknown = sorted(set(raw) - allowed)
     if unknown:
         raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: {sorted(allowed)})")
@@ -126,8 +129,9 @@ def _canonical_split(raw: Any, where: str) -> dict:
         raise ConfigError(f"{where}.kind: must be chronological or random, got {kind!r}")
     fractions = raw.get("fractions", [0.5, 0.2, 0.3])
     if not (isinstance(fractions, list) and len(fractions) == 3 and all(isinstance(f, (int, float)) for f in fractions)
-            and abs(sum(fractions) - 1) < 1e-9 and min(fractions) >= 0):
-        raise ConfigError(f"{where}.fractions: expected three non-negative numbers summing to 1, got {fractions!r}")
+            and abs(sum(fractions) - 1) < 1e-9 and min(fractions) > 0):
+        raise ConfigError(f"{where}.fractions: expected three positive numbers (train, validation, test) "
+                          f"summing to 1, got {fractions!r}; validation picks the threshold, so it cannot be empty")
     out: dict = {"kind": kind, "fractions": [float(f) for f in fractions]}
     if raw.get("embargo") is not None:
         from harness.windows import parse_duration
@@ -154,6 +158,16 @@ def _canonical_scoring(raw: Any, where: str) -> dict:
     if out["bootstrap_unit"] not in ("entity", "incident"):
         raise ConfigError(f"{where}.bootstrap_unit: must be entity or incident, got {out['bootstrap_unit']!r}")
     return out
+
+
+# Registry fields that change what a dataset's events or truth are (not its description).
+_ENTRY_FIELDS = {"sources", "logs", "format", "labels", "miner", "generator"}
+
+
+def entry_fingerprint(entry) -> str:
+    """Hash of the registry fields that define a dataset's data, so that editing them changes run ids."""
+    blob = json.dumps(entry.model_dump(mode="json", include=_ENTRY_FIELDS), sort_keys=True)
+    return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
 
 def vocabulary_label(spec: dict | None) -> str:
@@ -236,9 +250,10 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
     registry_files = [base / p for p in _as_list(doc.get("registry") or [])]
     registry = load_registry(registry_files)
     datasets = [str(d) for d in _as_list(_need(doc, "datasets", origin))]
+    fingerprints = {}
     for i, d in enumerate(datasets):
         try:
-            get_entry(d, registry)
+            fingerprints[d] = entry_fingerprint(get_entry(d, registry))
         except ConfigError as exc:
             raise ConfigError(f"datasets[{i}]: {exc}") from None
     from harness.windows import load_window_spec
@@ -282,7 +297,7 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
               enumerate(_as_list(doc.get("vocabularies", doc.get("vocabulary", "templates"))))]
     runs = [
         RunConfig(dataset=d, windows=w, task=t, split=split, noise=n, detector=det, seed=int(s),
-                  threshold=threshold, scoring=scoring, vocabulary=v)
+                  threshold=threshold, scoring=scoring, vocabulary=v, dataset_entry=fingerprints[d])
         for d, v, w, t, n, det, s in itertools.product(datasets, vocabs, windows, tasks, noises, dets, seeds)
     ]
     out = Path(output) if output else Path(doc.get("output") or (base / f"{name}-out"))

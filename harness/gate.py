@@ -81,8 +81,12 @@ def _mean_over_seeds(results: pd.DataFrame) -> pd.DataFrame:
         results = results.assign(vocabulary="templates")
     num = [c for c in results.columns if c not in KEYS + ["run_id", "seed"] and
            pd.api.types.is_numeric_dtype(results[c])]
+    grouped = results.groupby(KEYS, sort=False)
     with np.errstate(all="ignore"):
-        return results.groupby(KEYS, sort=False)[num].mean()
+        # A seed whose figure is undefined makes the mean undefined: never average over fewer seeds.
+        out = grouped[num].agg(lambda c: c.mean(skipna=False))
+    out["n_seeds"] = grouped["seed"].nunique() if "seed" in results.columns else 1
+    return out
 
 
 def compare(reference: pd.DataFrame, fresh: pd.DataFrame, metrics: list[str] | None = None,
@@ -97,7 +101,7 @@ def compare(reference: pd.DataFrame, fresh: pd.DataFrame, metrics: list[str] | N
     ref, new = _mean_over_seeds(reference), _mean_over_seeds(fresh)
     rows = []
     for key in ref.index:
-        task = "detect" if "name=detect" in str(key[2]) else "predict"
+        task = "detect" if "name=detect" in str(key[KEYS.index("task")]) else "predict"
         wanted = metrics or DEFAULT_METRICS[task]
         if key not in new.index:
             for m in wanted:
@@ -105,6 +109,10 @@ def compare(reference: pd.DataFrame, fresh: pd.DataFrame, metrics: list[str] | N
                              "fresh": np.nan, "change": np.nan, "allowed": np.nan, "verdict": "REGRESSION",
                              "note": "missing from the fresh run"})
             continue
+        if new.at[key, "n_seeds"] < ref.at[key, "n_seeds"]:
+            rows.append({**dict(zip(KEYS, key)), "metric": "seeds", "reference": float(ref.at[key, "n_seeds"]),
+                         "fresh": float(new.at[key, "n_seeds"]), "change": np.nan, "allowed": 0.0,
+                         "verdict": "REGRESSION", "note": "fewer seeds finished in the fresh run"})
         for m in wanted:
             if m not in ref.columns:
                 continue

@@ -258,12 +258,16 @@ def order_like(summary: pd.DataFrame, detectors: list[str], noises: list[str]) -
 
 
 def write_report(output: Path, title: str, detectors: list[str] | None = None,
-                 noises: list[str] | None = None) -> dict:
-    """Write report.md, results.csv, summary.csv, report.html and PNG plots into ``output``; return paths."""
+                 noises: list[str] | None = None, run_ids: set[str] | None = None) -> dict:
+    """Write report.md, results.csv, summary.csv, report.html and PNG plots into ``output``; return paths.
+
+    With ``run_ids`` only those runs are reported (records of other configurations left in
+    the same folder, e.g. from an earlier version of the experiment, are ignored).
+    """
     from harness.runs import RunStore
 
     store = RunStore(output)
-    records = store.records()
+    records = [r for r in store.records() if run_ids is None or r.get("run_id") in run_ids]
     results = load_results(records)
     summary = order_like(summarise(results), detectors or [], noises or [])
     table = headline_table(summary)

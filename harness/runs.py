@@ -237,10 +237,13 @@ class Runner:
             lo, hi = split.ranges["test"]
         else:  # a random split has no time range: the test windows' own span
             lo, hi = meta["start"].iloc[split.test].min(), meta["end"].iloc[split.test].max()
+        # Count only failures whose whole horizon lies in the test span, so that no failure's
+        # warning time is cut short by the split boundary (alarms still match every incident).
+        count_from = lo + prep.horizon if prep.horizon is not None and lo + prep.horizon < hi else lo
         report = evaluate_run(
             meta=meta.iloc[split.test].reset_index(drop=True), scores=test_scores, labels=test_truth,
             threshold=choice.threshold, incidents=data.truth, horizon=prep.horizon, cooldown=cooldown,
-            span=(lo, hi), bootstrap=run.scoring["bootstrap"], ci_level=run.scoring["ci_level"],
+            span=(count_from, hi), bootstrap=run.scoring["bootstrap"], ci_level=run.scoring["ci_level"],
             unit=run.scoring["bootstrap_unit"], seed=run.seed,
         )
         # Also score the test windows against the reported (noisy) labels, to show how noise distorts scores.

@@ -72,7 +72,8 @@ class Tracker:
         if record["status"] == "finished":
             vals: dict = {}
             _flatten("", record["metrics"], vals)
-            _flatten("ci", record.get("intervals", {}), vals)
+            for k, (lo, hi) in (record.get("intervals") or {}).items():
+                vals[f"ci.{k}.low"], vals[f"ci.{k}.high"] = lo, hi
             vals["threshold"] = record["threshold"]["value"]
             for k, v in vals.items():
                 if isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(float(v)):

@@ -233,7 +233,7 @@ def test_alarm_count_is_not_monotone_in_threshold() -> None:
 ALERTS = {
     # entity A: failure F1 10:00-11:00, horizon 6 h -> prediction range [04:00, 10:00)
     "A": [
-        at("03:50"), at("04:00"),  # one alarm at 03:50 (chain); alarm time 03:50 < 04:00 -> false
+        at("03:50"), at("04:00"),  # one alarm 03:50..04:00, still active at 04:00 -> predicts F1, lead 6 h
         at("05:30"), at("05:40"),  # one alarm at 05:30 -> predicts F1, lead 10:00-05:30 = 4.5 h
         at("05:55"),  # 15 min after 05:40 = exactly the cool-down -> new alarm, predicts F1
         at("07:00"), at("07:10"), at("07:20"), at("07:30"),  # one chained alarm, predicts F1
@@ -284,10 +284,10 @@ def test_worked_timeline_predict_task() -> None:
     meta, scores, incidents = timeline()
     rep = incident_metrics(meta, scores, 0.5, incidents, pd.Timedelta("6h"), pd.Timedelta("15min"), None, None)
     a = rep.alarms
-    # A: 03:50 false, 05:30/05:55/07:00 predicted, 10:20 detected; B: 09:00, 12:30 non-failure,
+    # A: 03:50 (active into the horizon), 05:30/05:55/07:00 predicted, 10:20 detected; B: 09:00, 12:30 non-failure,
     # 19:00 false, 01:00 predicted (F4); C: 14:10 detected, 03:30 predicted (F5).
     expected = [
-        ("A", at("03:50"), 2, "false", None),
+        ("A", at("03:50"), 2, "predicted", "F1"),
         ("A", at("05:30"), 2, "predicted", "F1"),
         ("A", at("05:55"), 1, "predicted", "F1"),
         ("A", at("07:00"), 4, "predicted", "F1"),
@@ -307,7 +307,9 @@ def test_worked_timeline_predict_task() -> None:
     assert list(f.index) == ["F1", "F2", "F3", "F4"]  # F5 starts after the span: not counted
     assert f["predicted"].tolist() == [True, False, False, True]
     assert f["detected"].tolist() == [True, True, False, False]
-    assert f.loc["F1", "lead_time"] == pd.Timedelta("4h30min")  # earliest predicting alarm 05:30
+    # The 03:50 alarm began before the horizon [04:00, 10:00) and was still active at 04:00:
+    # the warning counts from the horizon's start, 6 h ahead (not 6 h 10 min).
+    assert f.loc["F1", "lead_time"] == pd.Timedelta("6h")
     assert f.loc["F4", "lead_time"] == pd.Timedelta("1h")
     assert pd.isna(f.loc["F2", "lead_time"])
 
@@ -315,14 +317,14 @@ def test_worked_timeline_predict_task() -> None:
     assert s["failures"] == 4 and s["predicted"] == 2 and s["detected"] == 2 and s["detected_only"] == 1
     assert s["recall_predicted"] == 0.5  # F1, F4 of 4
     assert s["recall_detected_or_predicted"] == 0.75  # plus F2
-    assert s["alarms"] == 11 and s["false_alarms"] == 2 and s["nonfailure_alarms"] == 2
-    # (2 false + 2 non-failure) / 2 predicted failures
-    assert s["false_alarms_per_predicted_failure"] == 2.0
+    assert s["alarms"] == 11 and s["false_alarms"] == 1 and s["nonfailure_alarms"] == 2
+    # (1 false + 2 non-failure) / 2 predicted failures
+    assert s["false_alarms_per_predicted_failure"] == 1.5
     # 11 alarms over 28 h = 1/6 week, 4 entities: 11 / (1/6) / (4/100) = 1650
     assert s["alarms_per_week_per_100_entities"] == pytest.approx(1650.0)
-    assert s["lead_time_median_h"] == pytest.approx(2.75)  # median of 4.5 h and 1 h
-    # lead >= 1 h: F1 and F4 (exactly 1 h counts) of 4 failures; nothing reaches 6 h or 24 h
-    assert (s["share_lead_ge_1h"], s["share_lead_ge_6h"], s["share_lead_ge_24h"]) == (0.5, 0.0, 0.0)
+    assert s["lead_time_median_h"] == pytest.approx(3.5)  # median of 6 h and 1 h
+    # lead >= 1 h: F1 and F4 (exactly 1 h counts) of 4 failures; >= 6 h: F1 (exactly 6 h); none 24 h
+    assert (s["share_lead_ge_1h"], s["share_lead_ge_6h"], s["share_lead_ge_24h"]) == (0.5, 0.25, 0.0)
     assert rep.undefined() == {}
 
 
@@ -368,8 +370,8 @@ def test_run_record_combines_window_incident_and_interval_figures() -> None:
     assert_close(m, sklearn_window_metrics(labels, scores, 0.5))
     assert (m["recall"], m["precision"]) == (pytest.approx(8 / 72), 0.5)
     # Incident level: the worked numbers of test_worked_timeline_predict_task.
-    assert (m["predicted"], m["false_alarms_per_predicted_failure"]) == (2, 2.0)
-    assert rec["lead_times_h"] == [4.5, 1.0]
+    assert (m["predicted"], m["false_alarms_per_predicted_failure"]) == (2, 1.5)
+    assert rec["lead_times_h"] == [6.0, 1.0]
     assert "undefined" not in m
     for name, (lo, hi) in rec["intervals"].items():
         assert lo <= m[name] <= hi, name
