@@ -235,7 +235,7 @@ def _origin(entry: Entry, src: Source, mirror: Path | None) -> tuple[str, Path |
         cand = folder / _relative(src.mirror, "mirror", entry.name)
         if cand.is_file():
             return "copy", cand
-    if mirror is not None and (folder / src.file).is_file():
+    if (mirror is not None or os.environ.get("LOGTRIAL_MIRROR")) and (folder / src.file).is_file():
         return "copy", folder / src.file
     if src.url is not None:
         if src.url.startswith("file://"):
@@ -374,6 +374,9 @@ def _place(entry: Entry, src: Source, download: Path, tmp: Path, size_cap: int) 
                 f"{download}: {download.stat().st_size} bytes is over the size cap, expected at most {size_cap} bytes"
             )
         target = tmp / src.file
+        if target.exists():
+            raise DataError(f"dataset '{entry.name}': {src.file}: already provided by another source "
+                            "(expected each source to add files of its own)")
         try:
             os.link(download, target)
         except OSError:
@@ -395,10 +398,39 @@ def _publish(tmp: Path, folder: Path) -> None:
 
 def fetch(entry: Entry, home: Path | None = None, mirror: Path | None = None, progress: bool = True,
           size_cap: int = DEFAULT_SIZE_CAP, force: bool = False, timeout: float = TIMEOUT_S) -> FetchResult:
-    """Acquire a dataset: obtain and verify each source, unpack safely, publish `<home>/data/<name>/`."""
+    """Acquire a dataset: obtain and verify each source, unpack safely, publish `<home>/data/<name>/`.
+
+    Processes fetching the same dataset take turns (an advisory lock per dataset), so a
+    second one finds the first one's verified copy instead of racing on the same `.part`.
+    """
     if not entry.sources:
         raise DataError(f"dataset '{entry.name}': has no `sources` to fetch (it is generated, not downloaded)")
     home = Path(home) if home is not None else home_dir()
+    with _dataset_guard(home, entry.name):
+        return _fetch(entry, home, mirror, progress, size_cap, force, timeout)
+
+
+@contextlib.contextmanager
+def _dataset_guard(home: Path, name: str) -> Iterator[None]:
+    """One fetch of a dataset at a time across processes (POSIX advisory lock)."""
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - non-POSIX systems
+        yield
+        return
+    guard = Path(home) / "downloads" / f".{name}.fetch.guard"
+    guard.parent.mkdir(parents=True, exist_ok=True)
+    with open(guard, "a") as fh:
+        fcntl.flock(fh, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(fh, fcntl.LOCK_UN)
+
+
+def _fetch(entry: Entry, home: Path, mirror: Path | None, progress: bool, size_cap: int, force: bool,
+           timeout: float) -> FetchResult:
+    """The body of `fetch`, run while holding the dataset's guard."""
     mirror = Path(mirror) if mirror is not None else None
     data_root = home / "data"
     folder = data_root / entry.name

@@ -74,7 +74,7 @@ def _print_ingest(res, name: str) -> None:
     if m.get("bad_encoding_lines"):
         first = ", ".join(str(x) for x in m["first_bad_encoding_lines"])
         print(f"  warning: {m['bad_encoding_lines']:,} line(s) had bytes that are not valid "
-              f"{m['format']['encoding']}; replaced with U+FFFD (first at line {first})", file=sys.stderr)
+              f"{m['format']['encoding']}; replaced with U+FFFD (first at {first})", file=sys.stderr)
 
 
 def cmd_ingest(args: argparse.Namespace) -> int:
@@ -103,7 +103,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 def cmd_parse_score(args: argparse.Namespace) -> int:
     """Grouping accuracy of the miner against ground-truth templates."""
-    from harness.ingest import entry_files, ingest_entry
+    from harness.ingest import dataset_folder, ingest_entry
     from harness.parse_score import score_against_truth
     from harness.registry import get_entry, home_dir
 
@@ -113,7 +113,7 @@ def cmd_parse_score(args: argparse.Namespace) -> int:
     home = home_dir()
     mirror = Path(args.mirror) if args.mirror else None
     res = ingest_entry(entry, home, mirror, progress=True)
-    truth_path = entry_files(entry, home, mirror)[0].parent / entry.truth.file
+    truth_path = dataset_folder(entry, home, mirror) / entry.truth.file
     score = score_against_truth(res.events, res.templates, truth_path, entry.truth)
     rows = [{"dataset": entry.name, **{k: (f"{v:.4f}" if isinstance(v, float) else v) for k, v in score.items()}}]
     print(_table(rows, list(rows[0])))

@@ -14,7 +14,8 @@ DEMO_EXPERIMENT = REPO_ROOT / "reports" / "demo" / "experiment.yaml"
 def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True) -> int:
     """Simulate the fleet, ingest it, run the demo grid, write the report and print the headline table."""
     from harness.experiment import experiment_order, load_experiment
-    from harness.ingest import entry_files, ingest_files
+    from harness.acquire import log_files
+    from harness.ingest import dataset_folder, ingest_files
     from harness.parse_score import score_against_truth
     from harness.registry import get_entry, home_dir, load_registry
     from harness.report import compact, to_text, write_report
@@ -25,11 +26,12 @@ def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True) 
     exp = load_experiment(experiment, output=out)
     entry = get_entry("radar-relay", load_registry())
     print("[1/4] simulating the radar-relay fleet (cached by scenario hash)", flush=True)
-    files = entry_files(entry, home, progress=True)
+    folder = dataset_folder(entry, home, progress=True)
+    files = log_files(entry, folder)
     print(f"      {files[0]}")
     print("[2/4] ingesting and checking the template miner against the generator's template ids", flush=True)
     res = ingest_files(entry.name, files, entry.format, entry.miner, home / "tables", progress=True)
-    score = score_against_truth(res.events, res.templates, files[0].parent / entry.truth.file, entry.truth)
+    score = score_against_truth(res.events, res.templates, folder / entry.truth.file, entry.truth)
     print(f"      {res.manifest['rows']:,} events, {res.manifest['templates']} templates, "
           f"{res.manifest['quarantined']} quarantined, grouping accuracy {score['grouping_accuracy']:.4f}")
     print(f"[3/4] running {len(exp.runs)} runs: {len(experiment_order(exp)[0])} detectors x "

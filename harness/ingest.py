@@ -75,9 +75,18 @@ def file_sha256(path: Path, block: int = 1 << 20) -> str:
     return h.hexdigest()
 
 
+def _relative_names(files: list[Path]) -> list[str]:
+    """File paths relative to the folder that holds them all (what a path session key is read from)."""
+    if len(files) == 1:
+        return [files[0].name]
+    root = Path(os.path.commonpath([str(p.resolve().parent) for p in files]))
+    return [p.resolve().relative_to(root).as_posix() for p in files]
+
+
 def cache_key(files: list[Path], fmt: LineFormat, miner: Miner) -> tuple[str, dict]:
     """Hash of everything an event table depends on: input bytes, format, miner settings, code version."""
-    inputs = [{"file": p.name, "size": p.stat().st_size, "sha256": file_sha256(p)} for p in files]
+    inputs = [{"file": rel, "size": p.stat().st_size, "sha256": file_sha256(p)}
+              for p, rel in zip(files, _relative_names(files))]
     basis = {
         "inputs": inputs,
         "format": fmt.model_dump(mode="json"),
@@ -93,10 +102,17 @@ def _decoded_lines(path: Path, encoding: str, counters: _Counters, strict: bool)
     """Yield chunks of decoded lines (without newlines); undecodable bytes are replaced and counted."""
     with open(path, "rb") as fh:
         lineno = counters.lines
+        file_start = lineno
+        first = True
         while True:
             raw = fh.readlines(1 << 24)
             if not raw:
                 break
+            if first and encoding.replace("-", "").replace("_", "").lower() in ("utf8", "utf8sig"):
+                # A UTF-8 byte-order mark is not part of the first line.
+                if raw[0].startswith(b"\xef\xbb\xbf"):
+                    raw[0] = raw[0][3:]
+            first = False
             blob = b"".join(raw)
             try:
                 text = blob.decode(encoding)
@@ -111,13 +127,13 @@ def _decoded_lines(path: Path, encoding: str, counters: _Counters, strict: bool)
                     except UnicodeDecodeError as exc:
                         if strict:
                             raise DataError(
-                                f"{path}: line {lineno + i + 1}: byte {exc.start} is not valid {encoding} "
+                                f"{path}: line {lineno - file_start + i + 1}: byte {exc.start} is not valid {encoding} "
                                 f"(expected {encoding} text; ingest without --strict to replace such bytes)"
                             ) from None
                         s = b.decode(encoding, errors="replace")
                         counters.bad_encoding_lines += 1
                         if len(counters.first_bad_encoding) < 5:
-                            counters.first_bad_encoding.append(lineno + i + 1)
+                            counters.first_bad_encoding.append(f"{path.name}:{lineno - file_start + i + 1}")
                     lines.append(s[:-1] if s.endswith("\n") else s)
             lines = [s[:-1] if s.endswith("\r") else s for s in lines]
             lineno += len(lines)
@@ -141,8 +157,20 @@ def _parse_timestamps(values: list[str], fmt: LineFormat) -> np.ndarray:
         if any("  " in v for v in arr):
             arr = np.asarray([" ".join(v.split()) for v in arr], dtype=object)
         out = _strptime(arr, pattern)
-        out = out.tz_localize(ts.tz) if out.tz is None else out
+        out = _localize(out, ts.tz) if out.tz is None else out
     return np.asarray(out.tz_convert("UTC").tz_localize(None), dtype="datetime64[us]")
+
+
+def _localize(local: pd.DatetimeIndex, tz: str) -> pd.DatetimeIndex:
+    """Local wall-clock times in ``tz`` as aware times; across clock changes, repeated hours are
+    inferred from the order of the lines (else taken as the first occurrence) and skipped hours
+    shifted forward."""
+    if tz == "UTC":
+        return local.tz_localize("UTC")
+    try:
+        return local.tz_localize(tz, ambiguous="infer", nonexistent="shift_forward")
+    except ValueError:
+        return local.tz_localize(tz, ambiguous=np.ones(len(local), dtype=bool), nonexistent="shift_forward")
 
 
 _FRACTION = re.compile(r"(.*%S)([.,:])%f")
@@ -156,15 +184,16 @@ def _strptime(values: np.ndarray, pattern: str) -> pd.DatetimeIndex:
     fraction is added as microseconds; same result as parsing the whole pattern.
     """
     m = _FRACTION.fullmatch(pattern)
+    zoned = "%z" in pattern or "%Z" in pattern  # offsets may change (clock changes): convert to UTC
     if not m:
-        return pd.DatetimeIndex(pd.to_datetime(values, format=pattern, errors="coerce"))
+        return pd.DatetimeIndex(pd.to_datetime(values, format=pattern, errors="coerce", utc=zoned))
     head_fmt, sep = m.group(1), m.group(2)
     parts = [v.rpartition(sep) for v in values]
     heads = np.asarray([p[0] if p[1] else "" for p in parts], dtype=object)
     fracs = [p[2] for p in parts]
     good = np.fromiter((0 < len(f) <= 9 and f.isdigit() for f in fracs), dtype=bool, count=len(fracs))
     micros = np.asarray([int(f[:6].ljust(6, "0")) if ok else 0 for f, ok in zip(fracs, good)], dtype="int64")
-    base = pd.DatetimeIndex(pd.to_datetime(heads, format=head_fmt, errors="coerce", cache=True))
+    base = pd.DatetimeIndex(pd.to_datetime(heads, format=head_fmt, errors="coerce", cache=True, utc=zoned))
     out = base + pd.to_timedelta(micros, unit="us")
     return out.where(good, pd.NaT)
 
@@ -265,11 +294,11 @@ def _take(chunk: _Chunk, keep: np.ndarray) -> _Chunk:
                   pick(chunk.tag))
 
 
-def _path_group(path: Path, fmt: LineFormat) -> str | None:
-    """Session key taken from the file path, when the format says so."""
+def _path_group(path: str, fmt: LineFormat) -> str | None:
+    """Session key taken from the file's path (relative to the dataset folder), when the format says so."""
     if not (fmt.group and fmt.group.path):
         return None
-    m = re.search(fmt.group.path, path.as_posix())
+    m = re.search(fmt.group.path, path)
     return (m.group(1) if m.groups() else m.group(0)) if m else None
 
 
@@ -290,14 +319,22 @@ def ingest_files(
     for f in files:
         if not f.is_file():
             raise DataError(f"{f}: log file not found")
-        if f.stat().st_size == 0:
-            raise DataError(f"{f}: file is empty (expected log lines)")
+    empty = [f for f in files if f.stat().st_size == 0]
+    if len(empty) == len(files):
+        raise DataError(f"{empty[0]}: file is empty (expected log lines)")
+    files = [f for f in files if f not in empty]
     key, basis = cache_key(files, fmt, miner_settings)
+    basis["empty_files"] = [f.name for f in empty]
     folder = Path(out_root) / name / key[:16]
     manifest_path = folder / "manifest.json"
     if not force and manifest_path.is_file():
         manifest = json.loads(manifest_path.read_text())
         if manifest.get("key") == key:
+            if strict and manifest.get("bad_encoding_lines"):
+                first = ", ".join(str(x) for x in manifest.get("first_bad_encoding_lines") or [])
+                raise DataError(f"{files[0].parent}: {manifest['bad_encoding_lines']} line(s) are not valid "
+                                f"{fmt.encoding} (first: {first}); expected {fmt.encoding} text "
+                                "(ingest without --strict to replace such bytes)")
             return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", manifest, cached=True)
 
     miner = miner or registry_miner(miner_settings.model_dump())
@@ -358,8 +395,8 @@ def _write_table(
     with open(out / "quarantine.tsv", "w", encoding="utf-8") as qf:
         qf.write("line\treason\ttext\n")
         try:
-            for path in files:
-                parser = _LineParser(fmt, _path_group(path, fmt))
+            for path, rel in zip(files, _relative_names(files)):
+                parser = _LineParser(fmt, _path_group(rel, fmt))
                 for lines in _decoded_lines(path, fmt.encoding, counters, strict):
                     first = counters.lines + 1
                     counters.lines += len(lines)
@@ -404,19 +441,22 @@ def read_events(path: Path) -> pd.DataFrame:
     return pq.read_table(path).to_pandas()
 
 
-def entry_files(entry, home: Path, mirror: Path | None = None, progress: bool = False) -> list[Path]:
-    """Local paths of an entry's log files, acquiring (or generating) them first when needed."""
+def dataset_folder(entry, home: Path, mirror: Path | None = None, progress: bool = False) -> Path:
+    """The local folder holding an entry's files, acquiring (or generating) them first when needed."""
     if entry.generator is not None:
         from harness.simulate import ensure_generated, load_scenario
 
-        folder = ensure_generated(load_scenario(entry.generator), home / "generated", progress=progress)
-    else:
-        from harness.acquire import fetch
+        return ensure_generated(load_scenario(entry.generator), home / "generated", progress=progress)
+    from harness.acquire import fetch
 
-        folder = fetch(entry, home=home, mirror=mirror, progress=progress).path
+    return fetch(entry, home=home, mirror=mirror, progress=progress).path
+
+
+def entry_files(entry, home: Path, mirror: Path | None = None, progress: bool = False) -> list[Path]:
+    """Local paths of an entry's log files, acquiring (or generating) them first when needed."""
     from harness.acquire import log_files
 
-    return log_files(entry, folder)
+    return log_files(entry, dataset_folder(entry, home, mirror, progress))
 
 
 def ingest_entry(entry, home: Path, mirror: Path | None = None, **kwargs) -> IngestResult:

@@ -16,9 +16,19 @@ def anomalous_sessions(path: Path, entry: Entry) -> list[str]:
     """Session keys marked anomalous in a label file, per the entry's label parser."""
     lab = entry.labels
     if not path.is_file():
-        raise DataError(f"{path}: label file of dataset '{entry.name}' not found (labels.file)")
+        # Archives often wrap their content in one folder: accept a single match below.
+        found = sorted(path.parent.rglob(path.name)) if path.parent.is_dir() else []
+        if len(found) != 1:
+            raise DataError(f"{path}: label file of dataset '{entry.name}' not found (labels.file)")
+        path = found[0]
     if lab.parser == "csv":
-        df = pd.read_csv(path, dtype=str, keep_default_na=False)
+        try:
+            df = pd.read_csv(path, dtype=str, keep_default_na=False)
+        except (OSError, UnicodeDecodeError, pd.errors.ParserError, pd.errors.EmptyDataError) as exc:
+            raise DataError(f"{path}: cannot read the session label file ({exc}); "
+                            "expected a CSV with a session key and a label column") from None
+        if (lab.key is None or lab.label is None) and len(df.columns) < 2:
+            raise DataError(f"{path}: line 1: expected two columns (session key, label), found {list(df.columns)}")
         key, col = lab.key or df.columns[0], lab.label or df.columns[1]
         for c in (key, col):
             if c not in df.columns:

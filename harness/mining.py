@@ -510,7 +510,7 @@ def _drain_from_settings(options: dict[str, Any]) -> DrainMiner:
     return DrainMiner(**options)
 
 
-_MINER_KINDS: dict[str, Callable[[dict[str, Any]], TemplateMiner]] = {
+MINER_KINDS: dict[str, Callable[[dict[str, Any]], TemplateMiner]] = {
     "drain": _drain_from_settings,
 }
 
@@ -519,7 +519,7 @@ def registry_miner(settings: dict) -> TemplateMiner:
     """Build the template miner described by a settings dict (kind defaults to drain)."""
     options = dict(settings)
     kind = options.pop("kind", "drain")
-    factory = _MINER_KINDS.get(kind)
+    factory = MINER_KINDS.get(kind)
     if factory is None:
-        raise ValueError(f"unknown template miner kind {kind!r}; known kinds: {sorted(_MINER_KINDS)}")
+        raise ValueError(f"unknown template miner kind {kind!r}; known kinds: {sorted(MINER_KINDS)}")
     return factory(options)

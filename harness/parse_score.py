@@ -88,12 +88,19 @@ def score_against_truth(events_path, templates_path, truth_path, truth) -> dict:
     common = events[events["line"].isin(gt.index)]
     if common.empty:
         raise DataError(f"{truth_path}: no ground-truth row matches an ingested line number")
+    # Lines the format quarantined were never grouped: each counts as wrongly grouped
+    # (its own singleton group), so the accuracy is over every ground-truth line.
+    missing = gt.index.difference(pd.Index(common["line"]))
+    pred = pd.Series(common["event"].to_numpy().astype(object), index=common["line"].to_numpy())
+    pred = pd.concat([pred, pd.Series([f"unscored-{i}" for i in missing], index=missing, dtype=object)]).sort_index()
+    all_truth = gt.loc[pred.index, truth.id].to_numpy()
     truth_ids = gt.loc[common["line"], truth.id].to_numpy()
     truth_tpl = dict(zip(gt[truth.id], gt[truth.template]))
     return {
-        "lines": int(len(common)),
+        "lines": int(len(gt)),
+        "unscored_lines": int(len(missing)),
         "true_templates": int(pd.unique(truth_ids).size),
         "mined_templates": int(common["event"].nunique()),
-        "grouping_accuracy": grouping_accuracy(truth_ids, common["event"].to_numpy()),
+        "grouping_accuracy": grouping_accuracy(all_truth, pred.to_numpy()),
         "exact_templates": template_match_share(truth_tpl, templates, truth_ids, common["event"].to_numpy()),
     }

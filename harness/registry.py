@@ -68,6 +68,18 @@ class Timestamp(_Strict):
     default_year: int | None = None
     tz: str = "UTC"
 
+    @field_validator("tz")
+    @classmethod
+    def _known_zone(cls, v: str) -> str:
+        import zoneinfo
+
+        try:
+            zoneinfo.ZoneInfo(v)
+        except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+            raise ValueError(f"unknown time zone {v!r} (expected an IANA name such as 'UTC' or 'Europe/Berlin')") \
+                from None
+        return v
+
     @model_validator(mode="after")
     def _format_or_unit(self) -> "Timestamp":
         if (self.format is None) == (self.unit is None):
@@ -109,6 +121,20 @@ class LineFormat(_Strict):
     group: Grouping | None = None
     tag: Tag | None = None
     encoding: str = "utf-8"
+
+    @field_validator("encoding")
+    @classmethod
+    def _line_encoding(cls, v: str) -> str:
+        import codecs
+
+        try:
+            codecs.lookup(v)
+        except LookupError:
+            raise ValueError(f"unknown encoding {v!r}") from None
+        if "\n".encode(v) != b"\n":
+            raise ValueError(f"encoding {v!r} does not write a newline as the byte 0x0A; "
+                             "convert the file to UTF-8 first (e.g. with iconv)")
+        return v
 
     @model_validator(mode="after")
     def _groups_exist(self) -> "LineFormat":
@@ -174,6 +200,15 @@ class Miner(_Strict):
     depth: int = Field(default=4, ge=3)
     max_children: int = Field(default=100, ge=1)
 
+    @field_validator("kind")
+    @classmethod
+    def _known_kind(cls, v: str) -> str:
+        from harness.mining import MINER_KINDS
+
+        if v not in MINER_KINDS:
+            raise ValueError(f"unknown template miner {v!r}; known: {sorted(MINER_KINDS)}")
+        return v
+
     @field_validator("masks")
     @classmethod
     def _masks_compile(cls, v: list[str]) -> list[str]:
@@ -208,6 +243,14 @@ class Entry(_Strict):
     truth: Truth | None = None
     expected: dict[str, float] = Field(default_factory=dict)
     generator: dict[str, Any] | None = None
+
+    @field_validator("logs")
+    @classmethod
+    def _relative_patterns(cls, v: list[str]) -> list[str]:
+        for pattern in v:
+            if pattern.startswith(("/", "\\")) or ".." in pattern.replace("\\", "/").split("/"):
+                raise ValueError(f"{pattern!r} must be a path or glob pattern inside the dataset folder")
+        return v
 
     @model_validator(mode="after")
     def _has_origin(self) -> "Entry":

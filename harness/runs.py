@@ -126,16 +126,18 @@ class Runner:
     def dataset(self, name: str) -> DatasetData:
         """Events and truth incidents of a dataset (ingested or reused from the cache)."""
         if name not in self._datasets:
-            from harness.ingest import entry_files, ingest_files, read_events
+            from harness.acquire import log_files
+            from harness.ingest import dataset_folder, ingest_files, read_events
             from harness.labels import truth_incidents
             from harness.registry import get_entry, load_registry
 
             entry = get_entry(name, load_registry(self.exp.registry_files))
-            files = entry_files(entry, self.home, self.mirror, progress=self.progress)
+            folder = dataset_folder(entry, self.home, self.mirror, progress=self.progress)
+            files = log_files(entry, folder)
             res = ingest_files(entry.name, files, entry.format, entry.miner, self.home / "tables",
                                progress=self.progress)
             events = read_events(res.events)
-            truth = truth_incidents(entry, events, files[0].parent)
+            truth = truth_incidents(entry, events, folder)
             templates = pd.read_csv(res.templates, keep_default_na=False)["template"].astype(str).tolist()
             self._datasets[name] = DatasetData(name, events, int(res.manifest["templates"]), truth,
                                                res.manifest["key"], templates)

@@ -637,3 +637,44 @@ def test_fetch_bgl_2k_from_shared_mirror(home: Path, loghub_dir: Path) -> None:
     assert log_files(entry, res.path) == res.files
     assert verify(entry, home) == {"BGL_2k.log": "ok", "BGL_2k.log_structured.csv": "ok"}
     assert fetch(entry, home=home, mirror=loghub_dir, progress=False).cached
+
+
+def _fetch_in_child(args: tuple) -> str:
+    entry_doc, home, mirror_dir_ = args
+    entry = Entry.model_validate(entry_doc)
+    return str(fetch(entry, home=Path(home), mirror=Path(mirror_dir_), progress=False).path)
+
+
+def test_concurrent_fetches_of_one_dataset_take_turns(tmp_path: Path, mirror: Path) -> None:
+    import multiprocessing
+
+    entry = make_entry("demo", [{"file": "app.log", "mirror": "sys/app.log"}], ["app.log"])
+    home = tmp_path / "home"
+    with multiprocessing.get_context("spawn").Pool(3) as pool:
+        paths = pool.map(_fetch_in_child, [(entry.model_dump(mode="json"), str(home), str(mirror))] * 3)
+    assert len(set(paths)) == 1
+    assert (Path(paths[0]) / "app.log").read_bytes() == LOG
+    assert read_lock(home)["demo"]["app.log"]["sha256"] == sha(LOG)
+
+
+def test_flat_mirror_folder_from_the_environment(tmp_path: Path, monkeypatch) -> None:
+    flat = tmp_path / "flat"
+    flat.mkdir()
+    (flat / "app.log").write_bytes(LOG)
+    entry = make_entry("web", [{"file": "app.log", "url": "https://example.invalid/app.log"}], ["app.log"])
+    monkeypatch.setenv("LOGTRIAL_MIRROR", str(flat))
+    res = fetch(entry, home=tmp_path / "home", progress=False)
+    assert (res.path / "app.log").read_bytes() == LOG
+
+
+def test_two_sources_may_not_provide_the_same_file(tmp_path: Path) -> None:
+    m = tmp_path / "m"
+    (m / "a").mkdir(parents=True)
+    (m / "b").mkdir(parents=True)
+    (m / "a" / "app.log").write_bytes(LOG)
+    (m / "b" / "app.log").write_bytes(LOG + b"more\n")
+    entry = make_entry("dup", [{"file": "app.log", "mirror": "a/app.log"}, {"file": "app.log", "mirror": "b/app.log"}],
+                       ["app.log"])
+    with pytest.raises(DataError, match="already provided by another source"):
+        fetch(entry, home=tmp_path / "home", mirror=m, progress=False)
+    assert not (tmp_path / "home" / "data" / "dup").exists()

@@ -122,10 +122,13 @@ def test_invalid_utf8_is_replaced_and_counted_or_refused_when_strict(tmp_path: P
     res = ingest_files("t", [path], FORMAT, MINER, tmp_path / "out")
     assert res.manifest["rows"] == 5
     assert res.manifest["bad_encoding_lines"] == 1
-    assert res.manifest["first_bad_encoding_lines"] == [3]
+    assert res.manifest["first_bad_encoding_lines"] == ["a.log:3"]
     with pytest.raises(DataError, match=r"a\.log: line 3: .*not valid utf-8"):
         ingest_files("t", [path], FORMAT, MINER, tmp_path / "strict", strict=True)
     assert not any((tmp_path / "strict").rglob("events.parquet"))
+    # A cached table built with replacements is not handed to a strict ingest either.
+    with pytest.raises(DataError, match=r"not valid utf-8 \(first: a\.log:3\)"):
+        ingest_files("t", [path], FORMAT, MINER, tmp_path / "out", strict=True)
 
 
 def test_empty_file_is_refused(tmp_path: Path) -> None:
@@ -235,8 +238,10 @@ def test_cli_fetch_ingest_parse_score_on_real_sample(loghub_dir: Path, home: Pat
     assert main(["parse-score", "bgl-2k", "--mirror", str(loghub_dir)]) == 0
     out = capsys.readouterr().out
     assert "fetched and verified" in out and "built event table" in out
+    header = [ln for ln in out.splitlines() if ln.startswith("dataset ")][-1].split()
     row = [ln for ln in out.splitlines() if ln.startswith("bgl-2k ")][-1].split()
-    ga = float(row[4])
+    ga = float(row[header.index("grouping_accuracy")])
+    assert row[header.index("unscored_lines")] == "0"
     assert abs(ga - 0.963) <= 0.01
     assert main(["datasets"]) == 0
     listing = capsys.readouterr().out
@@ -262,3 +267,44 @@ def test_fraction_split_parse_equals_pandas_full_pattern(pattern: str) -> None:
     ours = _strptime(arr, pattern)
     ref = pd.DatetimeIndex(pd.to_datetime(arr, format=pattern, errors="coerce"))
     assert ours.equals(ref)
+
+
+def test_bom_changing_offsets_and_clock_changes(tmp_path: Path) -> None:
+    # A UTF-8 byte-order mark is not part of the first line.
+    bom = tmp_path / "bom.log"
+    bom.write_bytes(b"\xef\xbb\xbf" + ("\n".join(_healthy_lines(3)) + "\n").encode())
+    assert ingest_files("t", [bom], FORMAT, MINER, tmp_path / "o1").manifest["quarantined"] == 0
+    # ISO 8601 offsets that change at a clock change become UTC (reference: pandas utc=True).
+    zoned = LineFormat.model_validate({"regex": r"^(?P<ts>\S+) (?P<host>\S+) (?P<content>.*)$",
+                                       "timestamp": {"fields": ["ts"], "format": "%Y-%m-%dT%H:%M:%S%z"},
+                                       "entity": "host"})
+    z = _write(tmp_path / "z.log", ["2023-10-29T02:30:00+0200 n1 a 1", "2023-10-29T02:10:00+0100 n1 a 2"])
+    ev = read_events(ingest_files("z", [z], zoned, MINER, tmp_path / "o2").events)
+    assert ev["ts"].tolist() == [pd.Timestamp("2023-10-29 00:30", tz="UTC"), pd.Timestamp("2023-10-29 01:10", tz="UTC")]
+    # Local wall-clock times across the autumn change: the repeated hour is inferred from order.
+    local = LineFormat.model_validate({"regex": r"^(?P<ts>\S+ \S+) (?P<host>\S+) (?P<content>.*)$",
+                                       "timestamp": {"fields": ["ts"], "format": "%Y-%m-%d %H:%M:%S",
+                                                     "tz": "Europe/Berlin"}, "entity": "host"})
+    d = _write(tmp_path / "d.log", ["2023-10-29 02:30:00 n1 a 1", "2023-10-29 02:10:00 n1 a 2",
+                                    "2023-10-29 02:40:00 n1 a 3"])
+    ev = read_events(ingest_files("d", [d], local, MINER, tmp_path / "o3").events)
+    assert ev["ts"].is_monotonic_increasing and len(ev) == 3
+
+
+def test_path_session_key_is_relative_to_the_dataset_folder(tmp_path: Path) -> None:
+    fmt = LineFormat.model_validate({**FORMAT.model_dump(), "group": {"path": r"(job-\d+)"}})
+    root = tmp_path / "job-9" / "data"
+    files = []
+    for job in ("job-17", "job-18"):
+        (root / job).mkdir(parents=True)
+        files.append(_write(root / job / "a.log", _healthy_lines(4)))
+    ev = read_events(ingest_files("p", files, fmt, MINER, tmp_path / "out").events)
+    assert sorted(ev["group"].unique()) == ["job-17", "job-18"]
+
+
+def test_one_empty_file_of_several_is_skipped(tmp_path: Path) -> None:
+    a = _write(tmp_path / "a.log", _healthy_lines(5))
+    b = tmp_path / "b.log"
+    b.write_bytes(b"")
+    res = ingest_files("t", [a, b], FORMAT, MINER, tmp_path / "out")
+    assert res.manifest["rows"] == 5 and res.manifest["empty_files"] == ["b.log"]

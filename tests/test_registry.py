@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import pytest
@@ -118,3 +119,29 @@ def test_cli_reports_bad_registry_with_exit_2(tmp_path: Path, home: Path, capsys
     assert main(["datasets", "--registry", str(extra)]) == 2
     err = capsys.readouterr().err
     assert "extra.yaml" in err and "dataset 'mine'" in err
+
+
+@pytest.mark.parametrize(
+    "fmt_extra, needle",
+    [
+        ("encoding: utf8x", "unknown encoding 'utf8x'"),
+        ("encoding: utf-16", "does not write a newline as the byte 0x0A"),
+        ("timestamp: {fields: [content], format: '%Y', tz: CEST}", "unknown time zone 'CEST'"),
+    ],
+)
+def test_format_settings_are_checked_on_load(tmp_path: Path, fmt_extra: str, needle: str) -> None:
+    extra = _write(tmp_path, "datasets:\n  mine:\n    system: X\n    logs: [a.log]\n"
+                             "    sources: [{file: a.log, mirror: a.log}]\n"
+                             f"    format:\n      regex: '^(?P<content>.*)$'\n      {fmt_extra}\n")
+    with pytest.raises(ConfigError, match=re.escape(needle)):
+        load_registry([extra])
+
+
+def test_unknown_miner_and_escaping_log_pattern(tmp_path: Path) -> None:
+    extra = _write(tmp_path, "datasets:\n  mine:\n    system: X\n    logs: [../a.log]\n"
+                             "    sources: [{file: a.log, mirror: a.log}]\n    format: {regex: '^(?P<content>.*)$'}\n"
+                             "    miner: {kind: drian}\n")
+    with pytest.raises(ConfigError) as err:
+        load_registry([extra])
+    assert "miner.kind: unknown template miner 'drian'" in str(err.value)
+    assert "logs: '../a.log' must be a path or glob pattern inside the dataset folder" in str(err.value)
