@@ -91,8 +91,9 @@ def _cell(row: pd.Series, key: str) -> str:
 def headline_table(summary: pd.DataFrame) -> pd.DataFrame:
     """The comparison table a person reads: one row per detector and noise level."""
     out = pd.DataFrame({"dataset": summary["dataset"], "detector": summary["detector"], "noise": summary["noise"]})
-    if summary["vocabulary"].nunique() > 1:
-        out.insert(2, "vocabulary", summary["vocabulary"])
+    for pos, col in ((2, "task"), (2, "windows"), (2, "vocabulary")):
+        if summary[col].nunique() > 1:  # only the axes that vary get a column
+            out.insert(pos, col, summary[col])
     detect = summary["task"].astype(str).str.contains("name=detect").all()
     for key, title, _ in (HEADLINE_DETECT if detect else HEADLINE):
         if key in summary.columns:
@@ -152,8 +153,10 @@ def robustness_figure(summary: pd.DataFrame):
     fig, axes = plt.subplots(1, len(present), figsize=(5.2 * len(present), 4.2), squeeze=False)
     colours = plt.get_cmap("tab20").colors
     for ax, (key, title) in zip(axes[0], present):
-        series = summary["detector"] if summary["vocabulary"].nunique() <= 1 else \
-            summary["detector"] + " [" + summary["vocabulary"] + "]"
+        varying = [c for c in ("dataset", "vocabulary", "windows", "task") if summary[c].nunique() > 1]
+        series = summary["detector"]
+        for c in varying:
+            series = series + " | " + summary[c].astype(str)
         for i, (det, g) in enumerate(summary.groupby(series, sort=False)):
             g = g.assign(x=g["noise"].map(xs)).sort_values("x")
             y = g[key].replace([np.inf, -np.inf], np.nan)
@@ -277,10 +280,14 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
                                                                          float_format="%.6g")
     summary.to_csv(out / "summary.csv", index=False, float_format="%.6g")
     first_noise = summary["noise"].iloc[0]
+    # Lead-time and PR plots pool runs: only those of the first dataset / vocabulary / windows / task.
+    axes = ["dataset", "vocabulary", "windows", "task"]
+    same = (results[axes] == summary[axes].iloc[0]).all(axis=1)
+    plotted = [r for r in records if r.get("run_id") in set(results.loc[same, "run_id"])]
     figs = {"robustness.png": robustness_figure(summary)}
     if not summary["task"].astype(str).str.contains("name=detect").all():  # lead times exist only when predicting
-        figs["lead_times.png"] = lead_time_figure(records, first_noise, list(summary["detector"].drop_duplicates()))
-    figs["pr_curves.png"] = pr_figure(records, store, first_noise, list(summary["detector"].drop_duplicates()))
+        figs["lead_times.png"] = lead_time_figure(plotted, first_noise, list(summary["detector"].drop_duplicates()))
+    figs["pr_curves.png"] = pr_figure(plotted, store, first_noise, list(summary["detector"].drop_duplicates()))
     pngs = {name: _png(f) for name, f in figs.items()}
     for name, blob in pngs.items():
         (out / name).write_bytes(blob)
