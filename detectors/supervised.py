@@ -49,8 +49,6 @@ class LogisticDetector(Detector):
     supports_state: ClassVar[bool] = True
 
     def _fit(self, windows: WindowSet, labels: np.ndarray | None) -> None:
-        if labels is None:
-            raise self.error("trains on labelled windows but no labels were given")
         x, y = _labelled(windows, labels)
         p = self.params
         model = LogisticRegression(
@@ -94,8 +92,6 @@ class TreeDetector(Detector):
     supports_state: ClassVar[bool] = True
 
     def _fit(self, windows: WindowSet, labels: np.ndarray | None) -> None:
-        if labels is None:
-            raise self.error("trains on labelled windows but no labels were given")
         x, y = _labelled(windows, labels)
         p = self.params
         model = DecisionTreeClassifier(

@@ -14,24 +14,24 @@ import pandas as pd
 from harness.errors import DataError
 from harness.experiment import vocabulary_label
 
-# Headline figures: (record key, column title, better when higher?)
+# Headline figures: (record key, column title).
 HEADLINE = [
-    ("auprc", "AUPRC", True),
-    ("auroc", "AUROC", True),
-    ("f1", "F1", True),
-    ("recall_predicted", "failures predicted", True),
-    ("false_alarms_per_predicted_failure", "false alarms / predicted failure", False),
-    ("alarms_per_week_per_100_entities", "alarms / week / 100 nodes", False),
-    ("lead_time_median_h", "median lead (h)", True),
+    ("auprc", "AUPRC"),
+    ("auroc", "AUROC"),
+    ("f1", "F1"),
+    ("recall_predicted", "failures predicted"),
+    ("false_alarms_per_predicted_failure", "false alarms / predicted failure"),
+    ("alarms_per_week_per_100_entities", "alarms / week / 100 nodes"),
+    ("lead_time_median_h", "median lead (h)"),
 ]
 # For the detect task nothing is predicted ahead: count failures caught during them instead.
 HEADLINE_DETECT = [
-    ("auprc", "AUPRC", True),
-    ("auroc", "AUROC", True),
-    ("f1", "F1", True),
-    ("recall_detected_or_predicted", "failures caught", True),
-    ("false_alarms_per_caught_failure", "false alarms / caught failure", False),
-    ("alarms_per_week_per_100_entities", "alarms / week / 100 nodes", False),
+    ("auprc", "AUPRC"),
+    ("auroc", "AUROC"),
+    ("f1", "F1"),
+    ("recall_detected_or_predicted", "failures caught"),
+    ("false_alarms_per_caught_failure", "false alarms / caught failure"),
+    ("alarms_per_week_per_100_entities", "alarms / week / 100 nodes"),
 ]
 CURVES = [("auprc", "AUPRC"), ("recall_predicted", "share of failures predicted"),
           ("false_alarms_per_predicted_failure", "false alarms per predicted failure")]
@@ -95,7 +95,7 @@ def headline_table(summary: pd.DataFrame) -> pd.DataFrame:
         if summary[col].nunique() > 1:  # only the axes that vary get a column
             out.insert(pos, col, summary[col])
     detect = summary["task"].astype(str).str.contains("name=detect").all()
-    for key, title, _ in (HEADLINE_DETECT if detect else HEADLINE):
+    for key, title in (HEADLINE_DETECT if detect else HEADLINE):
         if key in summary.columns:
             out[title] = [_cell(r, key) for _, r in summary.iterrows()]
     return out
