@@ -23,3 +23,23 @@ def test_readme_first_command_runs_the_demo() -> None:
     first = _code_blocks(readme)[0]
     assert first.endswith("logtrial demo")
     assert "torch==2.13.0" in first
+
+
+def _yaml_blocks(text: str) -> list[str]:
+    return re.findall(r"```yaml\n(.*?)```", text, flags=re.S)
+
+
+def test_readme_examples_are_valid(tmp_path: Path) -> None:
+    # The format-file and experiment-file examples in the README load as written.
+    from harness.experiment import load_experiment
+    from harness.registry import format_from_file, miner_from_file
+
+    blocks = _yaml_blocks((ROOT / "README.md").read_text())
+    fmt = next(b for b in blocks if b.startswith("regex:"))
+    exp = next(b for b in blocks if b.startswith("experiment:"))
+    (tmp_path / "fmt.yaml").write_text(fmt)
+    assert "content" in format_from_file(tmp_path / "fmt.yaml").compiled().groupindex
+    assert miner_from_file(tmp_path / "fmt.yaml").masks == [r"\d+"]
+    (tmp_path / "exp.yaml").write_text(exp)
+    loaded = load_experiment(tmp_path / "exp.yaml")
+    assert len(loaded.runs) == 1 * 2 * 1 * 1 * 2 * 6 * 2  # datasets x vocabularies x windows x task x noise x detectors x seeds
