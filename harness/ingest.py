@@ -393,10 +393,12 @@ def _write_table(
     bar = tqdm(total=total, unit="B", unit_scale=True, desc="ingest", disable=not progress, file=sys.stderr)
     writer = pq.ParquetWriter(out / "events.parquet", EVENT_SCHEMA, compression="zstd")
     with open(out / "quarantine.tsv", "w", encoding="utf-8") as qf:
-        qf.write("line\treason\ttext\n")
+        # `line` counts across all files (the event table's numbering); `file_line` within `file`.
+        qf.write("line\tfile\tfile_line\treason\ttext\n")
         try:
             for path, rel in zip(files, _relative_names(files)):
                 parser = _LineParser(fmt, _path_group(rel, fmt))
+                file_start = counters.lines
                 for lines in _decoded_lines(path, fmt.encoding, counters, strict):
                     first = counters.lines + 1
                     counters.lines += len(lines)
@@ -405,7 +407,7 @@ def _write_table(
                         kind = "timestamp does not parse" if reason.startswith("timestamp") else reason
                         counters.reasons[kind] = counters.reasons.get(kind, 0) + 1
                         clean = text[:QUARANTINE_TEXT_CHARS].replace("\t", " ")
-                        qf.write(f"{ln}\t{reason}\t{clean}\n")
+                        qf.write(f"{ln}\t{rel}\t{ln - file_start}\t{reason}\t{clean}\n")
                     counters.quarantined += len(bad)
                     if chunk is not None:
                         events = np.asarray(miner.add_many(chunk.content), dtype=np.int32)

@@ -308,3 +308,13 @@ def test_one_empty_file_of_several_is_skipped(tmp_path: Path) -> None:
     b.write_bytes(b"")
     res = ingest_files("t", [a, b], FORMAT, MINER, tmp_path / "out")
     assert res.manifest["rows"] == 5 and res.manifest["empty_files"] == ["b.log"]
+
+
+def test_quarantine_names_the_file_and_its_own_line(tmp_path: Path) -> None:
+    a = _write(tmp_path / "a.log", _healthy_lines(4))
+    lines = _healthy_lines(4)
+    lines[2] = "broken line"
+    b = _write(tmp_path / "b.log", lines)
+    res = ingest_files("t", [a, b], FORMAT, MINER, tmp_path / "out")
+    q = pd.read_csv(res.quarantine, sep="\t")
+    assert q[["line", "file", "file_line"]].values.tolist() == [[7, "b.log", 3]]
