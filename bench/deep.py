@@ -3,7 +3,7 @@
 For each deep model the training tensors are prepared exactly as the detector prepares
 them (distinct next-event pairs, distinct sequence chunks, frequency vectors); then the
 same freshly seeded model is trained for the same number of epochs twice in this process,
-once with ``detectors.torch_train.train`` and once with a bare loop (shuffle, slice,
+once with ``logtrial.detectors.torch_train.train`` and once with a bare loop (shuffle, slice,
 forward, backward, step), and the ratio of training windows per second is printed
 (target >= 0.9: the harness adds no meaningful overhead). The whole ``Detector.fit`` rate
 is printed too. ``--demo`` also times ``logtrial demo`` (the demo grid with the deep
@@ -26,13 +26,14 @@ import torch
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+from logtrial.detectors.density_autoencoder import DensityNet, frequencies  # noqa: E402
+from logtrial.detectors.next_event import NextEventNet, distinct_pairs, weighted_ce  # noqa: E402
+from logtrial.detectors.registry import create  # noqa: E402
+from logtrial.detectors.seq_autoencoder import SeqAutoencoderNet, distinct_chunks, weighted_reconstruction  # noqa: E402
+from logtrial.detectors.torch_train import batch_slices, torch_session, train  # noqa: E402
+from logtrial.windowing.windows import WindowSet  # noqa: E402
+
 from bench.detectors import simulated_windows  # noqa: E402
-from detectors.density_autoencoder import DensityNet, frequencies  # noqa: E402
-from detectors.next_event import NextEventNet, distinct_pairs, weighted_ce  # noqa: E402
-from detectors.registry import create  # noqa: E402
-from detectors.seq_autoencoder import SeqAutoencoderNet, distinct_chunks, weighted_reconstruction  # noqa: E402
-from detectors.torch_train import batch_slices, torch_session, train  # noqa: E402
-from harness.windows import WindowSet  # noqa: E402
 
 
 def _mse(model: torch.nn.Module, batch: tuple[torch.Tensor, ...]) -> torch.Tensor:
@@ -115,7 +116,7 @@ def main() -> int:
             print(f"{name:<12}{n:>10,}{rates['harness']:>14,.0f}{rates['bare']:>12,.0f}"
                   f"{rates['harness'] / rates['bare']:>8.2f}{fit_rate:>12,.0f}")
     if args.demo:
-        from harness.demo import run_demo
+        from logtrial.demo import run_demo
 
         with tempfile.TemporaryDirectory() as out:
             t0 = time.perf_counter()

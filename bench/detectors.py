@@ -21,17 +21,17 @@ import pandas as pd
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from detectors.registry import BUILTINS, create  # noqa: E402
-from harness.windows import WindowSet  # noqa: E402
+from logtrial.detectors.registry import BUILTINS, create  # noqa: E402
+from logtrial.windowing.windows import WindowSet  # noqa: E402
 
 
 def simulated_windows(nodes: int, days: float, work: Path) -> tuple[WindowSet, np.ndarray, str]:
     """Node-hour windows and predict labels (24 h horizon) of a simulated fleet."""
-    from harness.incidents import read_incidents
-    from harness.ingest import ingest_files
-    from harness.registry import LineFormat, Miner
-    from harness.simulate import LINE_REGEX, RECOMMENDED_MINER, generate, load_scenario
-    from harness.windows import label_windows, time_windows
+    from logtrial.data.ingest import ingest_files
+    from logtrial.data.registry import LineFormat, Miner
+    from logtrial.labels.incidents import read_incidents
+    from logtrial.simulation.simulate import LINE_REGEX, RECOMMENDED_MINER, generate, load_scenario
+    from logtrial.windowing.windows import label_windows, time_windows
 
     sim = generate(load_scenario({"seed": 7, "nodes": nodes, "days": days}), work / "sim")
     fmt = LineFormat(regex=LINE_REGEX, timestamp={"fields": ["ts"], "format": "%Y-%m-%dT%H:%M:%S.%fZ"}, entity="host")

@@ -37,8 +37,8 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from harness.mining import registry_miner  # noqa: E402
-from harness.registry import get_entry, load_registry, mirror_dir  # noqa: E402
+from logtrial.data.mining import registry_miner  # noqa: E402
+from logtrial.data.registry import get_entry, load_registry, mirror_dir  # noqa: E402
 
 REGISTRY_NAMES = {"HDFS": "hdfs-2k", "BGL": "bgl-2k"}
 
@@ -214,7 +214,7 @@ def split_by_system(log_path: Path, systems: Sequence[str] = ("HDFS", "BGL")) ->
 
 def time_ingest_end_to_end(files: dict[str, Path], workdir: Path) -> tuple[int, float]:
     """(c) Ingest each system's file end to end (read, split headers, parse times, mine, write Parquet)."""
-    from harness.ingest import ingest_files
+    from logtrial.data.ingest import ingest_files
 
     registry = load_registry()
     total_n, total_s = 0, 0.0
@@ -233,8 +233,8 @@ def time_ingest_end_to_end(files: dict[str, Path], workdir: Path) -> tuple[int, 
 _RSS_PROBE = """
 import resource, sys, time
 from pathlib import Path
-from harness.ingest import ingest_files
-from harness.registry import get_entry, load_registry
+from logtrial.data.ingest import ingest_files
+from logtrial.data.registry import get_entry, load_registry
 import pyarrow.parquet, pandas, numpy
 entry = get_entry(sys.argv[1], load_registry())
 before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss

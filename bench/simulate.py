@@ -18,7 +18,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from harness.simulate import generate, load_scenario  # noqa: E402
+from logtrial.simulation.simulate import generate, load_scenario  # noqa: E402
 
 
 def peak_rss_mb() -> float:

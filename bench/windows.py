@@ -19,7 +19,7 @@ import pandas as pd
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from harness.windows import count_windows, session_windows, time_windows  # noqa: E402
+from logtrial.windowing.windows import count_windows, session_windows, time_windows  # noqa: E402
 
 VOCAB = 300
 

@@ -8,10 +8,9 @@ from pathlib import Path
 from typing import Any, ClassVar, Literal
 
 import numpy as np
+from logtrial.errors import LogtrialError
+from logtrial.windowing.windows import WindowSet
 from pydantic import BaseModel, ConfigDict, ValidationError
-
-from harness.errors import LogtrialError
-from harness.windows import WindowSet
 
 Reads = Literal["counts", "sequences"]
 TrainsOn = Literal["all", "healthy", "labelled"]

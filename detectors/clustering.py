@@ -6,12 +6,11 @@ from typing import Any, ClassVar, Literal
 
 import numpy as np
 import scipy.sparse as sp
+from logtrial.detectors.base import Detector, DetectorParams
+from logtrial.detectors.features import dense, idf_weights, l2_normalise_rows, scale_columns
+from logtrial.windowing.windows import WindowSet
 from pydantic import Field
 from scipy.cluster.hierarchy import fcluster, linkage
-
-from detectors.base import Detector, DetectorParams
-from detectors.features import dense, idf_weights, l2_normalise_rows, scale_columns
-from harness.windows import WindowSet
 
 CHUNK_ROWS = 8192
 

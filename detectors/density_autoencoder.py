@@ -7,12 +7,9 @@ from typing import Any, ClassVar, Literal
 import numpy as np
 import scipy.sparse as sp
 import torch
-from pydantic import Field, PositiveInt
-from torch import nn
-
-from detectors.base import Detector
-from detectors.features import dense, idf_weights
-from detectors.torch_train import (
+from logtrial.detectors.base import Detector
+from logtrial.detectors.features import dense, idf_weights
+from logtrial.detectors.torch_train import (
     TorchParams,
     TrainLog,
     arrays_to_weights,
@@ -24,7 +21,9 @@ from detectors.torch_train import (
     train,
     weights_to_arrays,
 )
-from harness.windows import WindowSet
+from logtrial.windowing.windows import WindowSet
+from pydantic import Field, PositiveInt
+from torch import nn
 
 CHUNK_ROWS = 16_384
 

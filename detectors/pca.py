@@ -5,12 +5,11 @@ from __future__ import annotations
 from typing import Any, ClassVar
 
 import numpy as np
+from logtrial.detectors.base import Detector, DetectorParams
+from logtrial.detectors.features import dense, idf_weights, scale_columns
+from logtrial.windowing.windows import WindowSet
 from pydantic import Field
 from scipy.stats import norm
-
-from detectors.base import Detector, DetectorParams
-from detectors.features import dense, idf_weights, scale_columns
-from harness.windows import WindowSet
 
 CHUNK_ROWS = 16_384
 

@@ -7,11 +7,10 @@ from typing import Any, ClassVar, Literal
 
 import numpy as np
 import scipy.sparse as sp
+from logtrial.detectors.base import Detector, DetectorParams
+from logtrial.detectors.features import dense, log1p_counts
+from logtrial.windowing.windows import WindowSet
 from pydantic import Field
-
-from detectors.base import Detector, DetectorParams
-from detectors.features import dense, log1p_counts
-from harness.windows import WindowSet
 
 CHUNK_ROWS = 16_384
 

@@ -6,11 +6,10 @@ from typing import Any, ClassVar
 
 import numpy as np
 import scipy.sparse as sp
+from logtrial.detectors.base import Detector, DetectorParams
+from logtrial.detectors.features import document_frequency
+from logtrial.windowing.windows import WindowSet
 from pydantic import Field
-
-from detectors.base import Detector, DetectorParams
-from detectors.features import document_frequency
-from harness.windows import WindowSet
 
 
 class RateRuleParams(DetectorParams):

@@ -6,12 +6,8 @@ from typing import Any, ClassVar
 
 import numpy as np
 import torch
-from pydantic import Field
-from torch import nn
-from torch.nn.utils.rnn import pack_padded_sequence
-
-from detectors.base import Detector
-from detectors.torch_train import (
+from logtrial.detectors.base import Detector
+from logtrial.detectors.torch_train import (
     TorchParams,
     arrays_to_weights,
     batch_slices,
@@ -21,7 +17,10 @@ from detectors.torch_train import (
     unique_rows,
     weights_to_arrays,
 )
-from harness.windows import WindowSet
+from logtrial.windowing.windows import WindowSet
+from pydantic import Field
+from torch import nn
+from torch.nn.utils.rnn import pack_padded_sequence
 
 
 class SeqAutoencoderParams(TorchParams):

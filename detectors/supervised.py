@@ -6,14 +6,13 @@ from typing import Any, ClassVar
 
 import numpy as np
 import scipy.sparse as sp
+from logtrial.detectors.base import Detector, DetectorParams
+from logtrial.detectors.features import dense, log1p_counts
+from logtrial.windowing.windows import WindowSet
 from pydantic import Field
 from scipy.special import expit
 from sklearn.linear_model import LogisticRegression
 from sklearn.tree import DecisionTreeClassifier
-
-from detectors.base import Detector, DetectorParams
-from detectors.features import dense, log1p_counts
-from harness.windows import WindowSet
 
 CHUNK_ROWS = 16_384
 

@@ -20,9 +20,8 @@ from typing import Callable, Iterator, Literal
 
 import numpy as np
 import torch
+from logtrial.detectors.base import DetectorParams
 from pydantic import Field
-
-from detectors.base import DetectorParams
 
 THREADS_ENV = "LOGTRIAL_TORCH_THREADS"
 PROGRESS_ENV = "LOGTRIAL_PROGRESS"

@@ -5,10 +5,11 @@ from __future__ import annotations
 from typing import Any, ClassVar, Literal
 
 import numpy as np
+from logtrial.detectors.base import Detector, DetectorParams
+from logtrial.detectors.catalogue import create_member, members
+from logtrial.errors import ConfigError
+from logtrial.windowing.windows import WindowSet
 from pydantic import BaseModel, ConfigDict, Field, model_validator
-
-from detectors.base import Detector, DetectorParams
-from harness.windows import WindowSet
 
 STAGES = ("stage1", "stage2")
 
@@ -25,21 +26,19 @@ class MemberSpec(BaseModel):
     @classmethod
     def _known(cls, raw: Any) -> Any:
         """Check the member exists and its params validate; store its full (canonical) params."""
-        from detectors.registry import available, create
-        from harness.errors import ConfigError
-
         if not isinstance(raw, dict) or not isinstance(raw.get("name"), str):
             raise ValueError("expected a mapping {name: <detector>, params: {...}}")
         name = raw["name"]
         if name == TwoStage.name:
             raise ValueError("a two_stage member cannot itself be two_stage")
-        if name not in available():
-            raise ValueError(f"unknown detector '{name}'; known: {', '.join(sorted(available()))}")
+        known = members(reserved=(TwoStage.name,))
+        if name not in known:
+            raise ValueError(f"unknown detector '{name}'; known: {', '.join(sorted(known))}")
         params = raw.get("params") or {}
         if not isinstance(params, dict):
             raise ValueError(f"params of member '{name}' must be a mapping")
         try:
-            det = create(name, params, seed=0, source="two_stage member")
+            det = create_member(name, params, seed=0, reserved=(TwoStage.name,))
         except ConfigError as exc:
             raise ValueError(str(exc)) from None
         return {**raw, "params": det.params.model_dump(mode="json")}
@@ -101,12 +100,11 @@ class TwoStage(Detector):
     supports_state: ClassVar[bool] = True
 
     def _members(self) -> list[tuple[int, int, Detector]]:
-        from detectors.registry import create
-
         out = []
         for s, stage in enumerate(STAGES, 1):
             for i, spec in enumerate(getattr(self.params, stage)):
-                out.append((s, i, create(spec.name, spec.params, seed=self.seed + 100 * s + i, source="two_stage")))
+                out.append((s, i, create_member(spec.name, spec.params, seed=self.seed + 100 * s + i, source="two_stage",
+                                             reserved=(TwoStage.name,))))
         return out
 
     def _fit(self, windows: WindowSet, labels: np.ndarray | None) -> None:

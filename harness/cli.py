@@ -7,8 +7,8 @@ import os
 import sys
 from pathlib import Path
 
-from harness import __version__
-from harness.errors import ConfigError, LogtrialError
+from logtrial import __version__
+from logtrial.errors import ConfigError, LogtrialError
 
 
 def _table(rows: list[dict], columns: list[str]) -> str:
@@ -21,15 +21,15 @@ def _table(rows: list[dict], columns: list[str]) -> str:
 
 
 def _registry(args: argparse.Namespace):
-    from harness.registry import load_registry
+    from logtrial.data.registry import load_registry
 
     return load_registry([Path(p) for p in getattr(args, "registry", None) or []])
 
 
 def cmd_datasets(args: argparse.Namespace) -> int:
     """List the registry and what is on disk."""
-    from harness.acquire import status
-    from harness.registry import home_dir
+    from logtrial.data.acquire import status
+    from logtrial.data.registry import home_dir
 
     reg = _registry(args)
     home = home_dir()
@@ -53,8 +53,8 @@ def cmd_datasets(args: argparse.Namespace) -> int:
 
 def cmd_fetch(args: argparse.Namespace) -> int:
     """Acquire and verify one dataset."""
-    from harness.acquire import fetch
-    from harness.registry import get_entry, home_dir
+    from logtrial.data.acquire import fetch
+    from logtrial.data.registry import get_entry, home_dir
 
     entry = get_entry(args.name, _registry(args))
     res = fetch(entry, home=home_dir(), mirror=Path(args.mirror) if args.mirror else None, progress=True)
@@ -79,8 +79,8 @@ def _print_ingest(res, name: str) -> None:
 
 def cmd_ingest(args: argparse.Namespace) -> int:
     """Build or reuse an event table."""
-    from harness.ingest import ingest_entry, ingest_files
-    from harness.registry import format_from_file, get_entry, home_dir, miner_from_file
+    from logtrial.data.ingest import ingest_entry, ingest_files
+    from logtrial.data.registry import format_from_file, get_entry, home_dir, miner_from_file
 
     home = home_dir()
     opts = dict(force=args.force, strict=args.strict, progress=True)
@@ -103,9 +103,9 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 def cmd_parse_score(args: argparse.Namespace) -> int:
     """Grouping accuracy of the miner against ground-truth templates."""
-    from harness.ingest import dataset_folder, ingest_entry
-    from harness.parse_score import score_against_truth
-    from harness.registry import get_entry, home_dir
+    from logtrial.data.ingest import dataset_folder, ingest_entry
+    from logtrial.data.parse_score import score_against_truth
+    from logtrial.data.registry import get_entry, home_dir
 
     entry = get_entry(args.name, _registry(args))
     if entry.truth is None:
@@ -122,18 +122,17 @@ def cmd_parse_score(args: argparse.Namespace) -> int:
 
 def cmd_simulate(args: argparse.Namespace) -> int:
     """Write a simulated fleet's logs and incidents."""
-    from harness.simulate import cli_simulate
+    from logtrial.simulation.simulate import cli_simulate
 
     return cli_simulate(args.config, args.out, seed=args.seed, progress=True, per_node=args.per_node)
 
 
 def cmd_run(args: argparse.Namespace) -> int:
     """Run or resume an experiment grid."""
-    from harness.experiment import load_experiment
-    from harness.registry import home_dir
-    from harness.runs import run_experiment
-
-    from harness.engines import check_engine_options, is_url, local_home
+    from logtrial.data.registry import home_dir
+    from logtrial.running.engines import check_engine_options, is_url, local_home
+    from logtrial.running.experiment import load_experiment
+    from logtrial.running.runs import run_experiment
 
     check_engine_options(args.engine, args.scheduler, args.workers)
     exp = load_experiment(Path(args.experiment), output=args.out)
@@ -153,9 +152,8 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 def cmd_report(args: argparse.Namespace) -> int:
     """Write tables and plots from recorded runs."""
-    from harness.experiment import load_experiment
-    from harness.experiment import experiment_order
-    from harness.report import compact, to_text, write_report
+    from logtrial.output.report import compact, to_text, write_report
+    from logtrial.running.experiment import experiment_order, load_experiment
 
     exp = load_experiment(Path(args.experiment), output=args.out)
     paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs})
@@ -169,11 +167,12 @@ def cmd_gate(args: argparse.Namespace) -> int:
     """Re-run (or read) an experiment and compare it with the committed reference."""
     import tempfile
 
-    from harness.experiment import load_experiment
-    from harness.gate import compare, format_table, gate_settings, read_results
-    from harness.registry import home_dir
-    from harness.report import load_results
-    from harness.runs import RunStore, run_experiment
+    from logtrial.data.registry import home_dir
+    from logtrial.output.gate import compare, format_table, gate_settings, read_results
+    from logtrial.output.report import load_results
+    from logtrial.running.experiment import load_experiment
+    from logtrial.running.runs import run_experiment
+    from logtrial.running.store import RunStore
 
     exp = load_experiment(Path(args.experiment))
     reference_dir = Path(args.reference) if args.reference else exp.output
@@ -295,7 +294,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--all", action="store_true", help="show every compared figure, not only those that moved")
     sp.add_argument("--quiet", action="store_true", help="no per-run progress")
 
-    from harness.demo import add_demo_parser
+    from logtrial.demo import add_demo_parser
 
     add_demo_parser(verb)
     return p

@@ -6,20 +6,20 @@ import argparse
 import time
 from pathlib import Path
 
-from harness.registry import REPO_ROOT
+from logtrial.data.registry import REPO_ROOT
 
 DEMO_EXPERIMENT = REPO_ROOT / "reports" / "demo" / "experiment.yaml"
 
 
 def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True) -> int:
     """Simulate the fleet, ingest it, run the demo grid, write the report and print the headline table."""
-    from harness.experiment import experiment_order, load_experiment
-    from harness.acquire import log_files
-    from harness.ingest import dataset_folder, ingest_files
-    from harness.parse_score import score_against_truth
-    from harness.registry import get_entry, home_dir, load_registry
-    from harness.report import compact, to_text, write_report
-    from harness.runs import run_experiment
+    from logtrial.data.acquire import log_files
+    from logtrial.data.ingest import dataset_folder, ingest_files
+    from logtrial.data.parse_score import score_against_truth
+    from logtrial.data.registry import get_entry, home_dir, load_registry
+    from logtrial.output.report import compact, to_text, write_report
+    from logtrial.running.experiment import experiment_order, load_experiment
+    from logtrial.running.runs import run_experiment
 
     t0 = time.time()
     home = home_dir()

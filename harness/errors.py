@@ -17,3 +17,7 @@ class DataError(LogtrialError):
     """Input data is unusable; the message names the file, line and expectation."""
 
     exit_code = 1
+
+
+class MetricError(DataError):
+    """A metric is undefined for the given labels or scores."""

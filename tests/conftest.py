@@ -68,8 +68,7 @@ def windows_from_counts(counts, labels=None):
     import numpy as np
     import pandas as pd
     import scipy.sparse as sp
-
-    from harness.windows import WindowSet
+    from logtrial.windowing.windows import WindowSet
 
     m = sp.csr_matrix(counts, dtype=np.int64)
     n = m.shape[0]

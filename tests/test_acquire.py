@@ -27,11 +27,10 @@ from pathlib import Path
 from typing import Callable, Iterator
 
 import pytest
-
-from harness.acquire import FetchResult, fetch, log_files, read_lock, status, verify
-from harness.errors import DataError
-from harness.registry import Entry, load_registry
-from harness.unpack import unpack_archive
+from logtrial.data.acquire import FetchResult, fetch, log_files, read_lock, status, verify
+from logtrial.data.registry import Entry, load_registry
+from logtrial.data.unpack import unpack_archive
+from logtrial.errors import DataError
 
 # ---------------------------------------------------------------- helpers
 

@@ -9,15 +9,12 @@ import numpy as np
 import pandas as pd
 import pytest
 import torch
-from sklearn.feature_extraction.text import TfidfTransformer
-from sklearn.metrics import roc_auc_score
-
 from conftest import windows_from_counts
-from detectors.density_autoencoder import DensityAutoencoder, frequencies, per_event_loss
-from detectors.next_event import NextEventLSTM
-from detectors.registry import create
-from detectors.seq_autoencoder import SequenceAutoencoder
-from detectors.torch_train import (
+from logtrial.detectors.density_autoencoder import DensityAutoencoder, frequencies, per_event_loss
+from logtrial.detectors.next_event import NextEventLSTM
+from logtrial.detectors.registry import create
+from logtrial.detectors.seq_autoencoder import SequenceAutoencoder
+from logtrial.detectors.torch_train import (
     THREADS_ENV,
     TorchParams,
     evaluate_loss,
@@ -29,7 +26,9 @@ from detectors.torch_train import (
     train,
     unique_rows,
 )
-from harness.windows import WindowSet
+from logtrial.windowing.windows import WindowSet
+from sklearn.feature_extraction.text import TfidfTransformer
+from sklearn.metrics import roc_auc_score
 
 
 def _ragged(seed: int, n: int = 40, vocab: int = 7) -> tuple[np.ndarray, np.ndarray]:
@@ -231,12 +230,12 @@ CLEAR_SCENARIO = {
 def scenario(tmp_path_factory: pytest.TempPathFactory) -> tuple[WindowSet, np.ndarray, np.ndarray, np.ndarray]:
     """Node-hour windows of a small simulated fleet: windows, predict-24h labels, train and test positions."""
     try:
-        sim_mod = importlib.import_module("harness.simulate")
-        reg = importlib.import_module("harness.registry")
-        from harness.incidents import read_incidents
-        from harness.ingest import ingest_files
-        from harness.splits import chronological_split
-        from harness.windows import label_windows, time_windows
+        sim_mod = importlib.import_module("logtrial.simulation.simulate")
+        reg = importlib.import_module("logtrial.data.registry")
+        from logtrial.data.ingest import ingest_files
+        from logtrial.labels.incidents import read_incidents
+        from logtrial.windowing.splits import chronological_split
+        from logtrial.windowing.windows import label_windows, time_windows
     except ImportError as exc:
         pytest.skip(f"simulated-scenario checks need the simulator and ingest ({exc})")
     out = tmp_path_factory.mktemp("deep-scenario")

@@ -5,9 +5,8 @@ from __future__ import annotations
 from pathlib import Path
 
 import yaml
-
-from harness.cli import main
-from harness.demo import DEMO_EXPERIMENT
+from logtrial.cli import main
+from logtrial.demo import DEMO_EXPERIMENT
 
 
 def test_demo_runs_the_whole_job_on_a_smaller_grid(tmp_path: Path, home: Path, capsys) -> None:

@@ -8,14 +8,13 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import windows_from_counts
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
-
-from conftest import windows_from_counts
-from detectors.base import READS, TRAINS_ON, Detector, DetectorError, DetectorParams
-from detectors.registry import ENTRY_POINT_GROUP, available, create, load
-from harness.errors import ConfigError
+from logtrial.detectors.base import READS, TRAINS_ON, Detector, DetectorError, DetectorParams
+from logtrial.detectors.registry import ENTRY_POINT_GROUP, available, create, load
+from logtrial.errors import ConfigError
 
 NAMES = sorted(available())
 VOCAB = 12
@@ -200,7 +199,7 @@ def test_nan_scores_are_refused(make_windows) -> None:
 
 PLUGIN = '''
 import numpy as np
-from detectors.base import Detector, DetectorParams
+from logtrial.detectors.base import Detector, DetectorParams
 
 
 class MaxCountParams(DetectorParams):

@@ -5,6 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.sparse as sp
+from conftest import windows_from_counts
+from logtrial.detectors.features import idf_weights
+from logtrial.detectors.pca import PCADetector, q_statistic
+from logtrial.detectors.registry import create
 from scipy.stats import norm
 from sklearn.cluster import AgglomerativeClustering
 from sklearn.decomposition import PCA
@@ -13,11 +17,6 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import adjusted_rand_score
 from sklearn.metrics.pairwise import cosine_distances
 from sklearn.tree import DecisionTreeClassifier
-
-from conftest import windows_from_counts
-from detectors.features import idf_weights
-from detectors.pca import PCADetector, q_statistic
-from detectors.registry import create
 
 
 def _sparse_counts(seed: int, n: int = 400, m: int = 20) -> np.ndarray:

@@ -7,11 +7,10 @@ import importlib
 import numpy as np
 import pandas as pd
 import pytest
+from logtrial.detectors.registry import BUILTINS, create
+from logtrial.labels.incidents import incidents_from_tags
+from logtrial.windowing.windows import WindowSet, count_windows, label_windows, time_windows
 from sklearn.metrics import roc_auc_score
-
-from detectors.registry import BUILTINS, create
-from harness.incidents import incidents_from_tags
-from harness.windows import WindowSet, count_windows, label_windows, time_windows
 
 UNSUPERVISED = sorted(n for n, c in BUILTINS.items() if c.trains_on != "labelled")
 
@@ -72,11 +71,11 @@ def test_rate_rule_catches_bgl_alerts_in_one_stream(bgl_events: pd.DataFrame) ->
 def _simulation_tools() -> dict:
     """The simulator, ingest, window and incident modules, or a skip naming what is missing."""
     needed = {
-        "harness.simulate": ("load_scenario", "generate", "LINE_REGEX", "RECOMMENDED_MINER"),
-        "harness.ingest": ("ingest_files",),
-        "harness.registry": ("LineFormat", "Miner"),
-        "harness.windows": ("time_windows", "label_windows"),
-        "harness.incidents": ("read_incidents",),
+        "logtrial.simulation.simulate": ("load_scenario", "generate", "LINE_REGEX", "RECOMMENDED_MINER"),
+        "logtrial.data.ingest": ("ingest_files",),
+        "logtrial.data.registry": ("LineFormat", "Miner"),
+        "logtrial.windowing.windows": ("time_windows", "label_windows"),
+        "logtrial.labels.incidents": ("read_incidents",),
     }
     mods = {}
     for mod, names in needed.items():
@@ -107,19 +106,19 @@ CLEAR_SCENARIO = {
 def scenario_windows(tmp_path_factory: pytest.TempPathFactory) -> tuple[WindowSet, np.ndarray]:
     """Predict-task windows (node-hours, 24 h horizon) over a small simulated fleet."""
     tools = _simulation_tools()
-    sim_mod, reg = tools["harness.simulate"], tools["harness.registry"]
+    sim_mod, reg = tools["logtrial.simulation.simulate"], tools["logtrial.data.registry"]
     out = tmp_path_factory.mktemp("scenario")
     sim = sim_mod.generate(sim_mod.load_scenario(CLEAR_SCENARIO), out / "sim")
     fmt = reg.LineFormat(
         regex=sim_mod.LINE_REGEX, timestamp={"fields": ["ts"], "format": "%Y-%m-%dT%H:%M:%S.%fZ"}, entity="host"
     )
-    res = tools["harness.ingest"].ingest_files(
+    res = tools["logtrial.data.ingest"].ingest_files(
         "radar-relay", [sim.log_path], fmt, reg.Miner(**sim_mod.RECOMMENDED_MINER), out / "tables"
     )
     events = pd.read_parquet(res.events)
-    win = tools["harness.windows"]
+    win = tools["logtrial.windowing.windows"]
     ws = win.time_windows(events, int(res.manifest["templates"]), pd.Timedelta("1h"))
-    incidents = tools["harness.incidents"].read_incidents(sim.incidents_path)
+    incidents = tools["logtrial.labels.incidents"].read_incidents(sim.incidents_path)
     labels = win.label_windows(ws, incidents, "predict", pd.Timedelta("24h"))
     return ws, labels
 

@@ -11,13 +11,14 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
-from conftest import relay_registry
 import yaml
-
-from harness.cli import main
-from harness.engines import group_payload, home_snapshot, local_home, run_group, worker_home
-from harness.experiment import load_experiment
-from harness.runs import Runner, RunStore, fit_groups, run_experiment
+from conftest import relay_registry
+from logtrial.cli import main
+from logtrial.running.engines import group_payload, home_snapshot, local_home, run_group, worker_home
+from logtrial.running.experiment import load_experiment
+from logtrial.running.runner import Runner, fit_groups
+from logtrial.running.runs import run_experiment
+from logtrial.running.store import RunStore
 
 distributed = pytest.importorskip("distributed")
 
@@ -118,7 +119,7 @@ def test_local_cluster_gives_the_local_engines_results(tmp_path: Path, home: Pat
     _assert_same_results(local.output, dask.output)
     # Both workers took part (Dask's own record of where each task ran).
     with distributed.Client(cluster, set_as_default=False) as client:
-        ran_on = client.run(lambda: len(__import__("harness.engines", fromlist=["_RUNNERS"])._RUNNERS))
+        ran_on = client.run(lambda: len(__import__("logtrial.running.engines", fromlist=["_RUNNERS"])._RUNNERS))
     assert sorted(ran_on.values()) == [1, 1], ran_on
     print(f"\nsmall grid (12 runs, 6 groups): local {t_local:.1f}s, dask 2 workers {t_dask:.1f}s")
 
@@ -188,7 +189,7 @@ def test_killed_worker_mid_grid_each_config_recorded_once(tmp_path: Path, home: 
 def test_a_lost_unit_of_work_is_recorded_failed_and_a_rerun_completes_it(tmp_path: Path, home: Path, quiet_dask,
                                                                         monkeypatch) -> None:
     # In-process workers (threads) so that the patched worker function is the one Dask calls.
-    import harness.engines as engines
+    import logtrial.running.engines as engines
 
     exp = load_experiment(_experiment(tmp_path, detectors=["pca", "rate_rule"], seeds=[1]))
     doomed = fit_groups(exp.runs)[0]
@@ -282,7 +283,7 @@ def test_home_paths_and_file_urls(tmp_path: Path) -> None:
     assert local_home("file://localhost" + str(tmp_path)) == tmp_path
     assert local_home("s3://bucket/home") is None
     assert worker_home(tmp_path.as_uri()) == tmp_path
-    from harness.errors import ConfigError
+    from logtrial.errors import ConfigError
 
     with pytest.raises(ConfigError, match="LOGTRIAL_HOME"):
         local_home("file://otherhost/data")
@@ -337,7 +338,7 @@ def test_bad_engine_options_exit_2_and_nothing_recorded(tmp_path: Path, home: Pa
 
 def test_unreachable_scheduler_exit_2_before_any_work(tmp_path: Path, home: Path, capsys, quiet_dask,
                                                       monkeypatch) -> None:
-    import harness.engines as engines
+    import logtrial.running.engines as engines
 
     monkeypatch.setattr(engines, "CONNECT_TIMEOUT", "1s")
     path = _experiment(tmp_path)

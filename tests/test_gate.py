@@ -10,11 +10,9 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
-
-from detectors.rate_rule import RateRule
-from harness.cli import main
-from harness.gate import compare
-
+from logtrial.cli import main
+from logtrial.detectors.rate_rule import RateRule
+from logtrial.output.gate import compare
 from test_runs import SMALL_REGISTRY
 
 DEGRADE_ENV = "LOGTRIAL_TEST_DEGRADE"
@@ -37,10 +35,10 @@ class NoisyRate(RateRule):
 @pytest.fixture()
 def plugin(monkeypatch: pytest.MonkeyPatch) -> None:
     """Install NoisyRate through the real entry-point path."""
-    import detectors.registry as reg
+    import logtrial.detectors.catalogue as cat
 
-    ep = EntryPoint(name="noisy_rate", value="test_gate:NoisyRate", group=reg.ENTRY_POINT_GROUP)
-    monkeypatch.setattr(reg, "entry_points", lambda group: [ep] if group == reg.ENTRY_POINT_GROUP else [])
+    ep = EntryPoint(name="noisy_rate", value="test_gate:NoisyRate", group=cat.ENTRY_POINT_GROUP)
+    monkeypatch.setattr(cat, "entry_points", lambda group: [ep] if group == cat.ENTRY_POINT_GROUP else [])
 
 
 def _experiment(tmp_path: Path) -> Path:

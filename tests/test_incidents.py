@@ -7,9 +7,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-
-from harness.errors import DataError
-from harness.incidents import (
+from logtrial.errors import DataError
+from logtrial.labels.incidents import (
     incidents_from_sessions,
     incidents_from_tags,
     read_incidents,

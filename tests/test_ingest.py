@@ -8,11 +8,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-
-from harness.cli import main
-from harness.errors import DataError
-from harness.ingest import ingest_files, read_events
-from harness.registry import LineFormat, Miner, load_registry
+from logtrial.cli import main
+from logtrial.data.ingest import ingest_files, read_events
+from logtrial.data.registry import LineFormat, Miner, load_registry
+from logtrial.errors import DataError
 
 REGISTRY = load_registry()
 SAMPLES = sorted(n for n in REGISTRY if n.endswith("-2k"))
@@ -150,7 +149,7 @@ class _CountingMiner:
     """Wraps a real miner and counts the lines it is asked to mine."""
 
     def __init__(self) -> None:
-        from harness.mining import registry_miner
+        from logtrial.data.mining import registry_miner
 
         self.inner = registry_miner(MINER.model_dump())
         self.mined = 0
@@ -252,7 +251,7 @@ def test_cli_fetch_ingest_parse_score_on_real_sample(loghub_dir: Path, home: Pat
 def test_fraction_split_parse_equals_pandas_full_pattern(pattern: str) -> None:
     # Reference library: pandas.to_datetime with the whole pattern, on valid, short,
     # missing and malformed fractions.
-    from harness.ingest import _strptime
+    from logtrial.data.ingest import _strptime
 
     rng = np.random.default_rng(3)
     base = pd.Timestamp("2005-06-03") + pd.to_timedelta(rng.integers(0, 10**9, 300), unit="s")

@@ -6,11 +6,10 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
-
-from harness.errors import DataError
-from harness.ingest import ingest_files, read_events
-from harness.labels import anomalous_sessions, truth_incidents
-from harness.registry import Entry, load_registry
+from logtrial.data.ingest import ingest_files, read_events
+from logtrial.data.registry import Entry, load_registry
+from logtrial.errors import DataError
+from logtrial.labels.truth import anomalous_sessions, truth_incidents
 
 REGISTRY = load_registry()
 

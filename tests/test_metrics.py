@@ -16,20 +16,19 @@ import pytest
 import scipy.stats
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
-from sklearn import metrics as skm
-
-from harness.alarms import IncidentReport, alarm_counts, incident_metrics, merge_alerts
-from harness.errors import ConfigError, DataError
-from harness.metrics import (
+from logtrial.errors import ConfigError, DataError
+from logtrial.evaluation.alarms import IncidentReport, alarm_counts, incident_metrics, merge_alerts
+from logtrial.evaluation.bootstrap import bootstrap_ci
+from logtrial.evaluation.metrics import (
     MetricError,
     auprc,
     auroc,
     average_ranks,
-    bootstrap_ci,
     precision,
     window_metrics,
     window_metrics_tolerant,
 )
+from sklearn import metrics as skm
 
 # ---------------------------------------------------------------------------
 # Window level against scikit-learn
@@ -160,7 +159,7 @@ def test_bad_inputs_name_the_problem() -> None:
 def test_real_bgl_windows_match_sklearn(bgl_events: pd.DataFrame) -> None:
     # Reference: scikit-learn on real logs (Loghub BGL 2k sample): 30-min windows per node,
     # a window is positive when it holds an alert-tagged line, scored by its event count.
-    from harness.windows import time_windows
+    from logtrial.windowing.windows import time_windows
 
     ws = time_windows(bgl_events, int(bgl_events["event"].max()) + 1, pd.Timedelta("30min"))
     tagged = bgl_events.assign(t=bgl_events["tag"] != "")
@@ -356,7 +355,7 @@ def test_no_alarm_and_no_failure_give_nan_with_reasons() -> None:
 
 
 def test_run_record_combines_window_incident_and_interval_figures() -> None:
-    from harness.metrics import evaluate_run
+    from logtrial.evaluation.run_figures import evaluate_run
 
     meta, scores, incidents = timeline()
     # Window labels for the check: A's windows ending in F1's prediction range [04:00, 10:00).
@@ -481,7 +480,7 @@ def test_bootstrap_named_metric_equals_function_of_resampled_report(unit: str) -
 
 def test_weighted_median_equals_numpy_median_of_repeated_values() -> None:
     # Reference: numpy.median of the values repeated by their weights.
-    from harness.metrics import _weighted_median
+    from logtrial.evaluation.alarms import _weighted_median
 
     rng = np.random.default_rng(12)
     values = rng.normal(size=15)

@@ -6,14 +6,13 @@ from __future__ import annotations
 import random
 from pathlib import Path
 
+import logtrial.data.mining as mining
 import numpy as np
 import pandas as pd
 import pytest
-
-import harness.mining as mining
-from harness.mining import DrainMiner, TemplateMiner, registry_miner
-from harness.parse_score import grouping_accuracy, template_match_share
 from loghub_settings import LOGHUB_MINER_SETTINGS, PUBLISHED_DRAIN_GA
+from logtrial.data.mining import DrainMiner, TemplateMiner, registry_miner
+from logtrial.data.parse_score import grouping_accuracy, template_match_share
 
 SYSTEMS = sorted(LOGHUB_MINER_SETTINGS)
 

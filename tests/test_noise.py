@@ -9,11 +9,10 @@ import pandas as pd
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from logtrial.errors import ConfigError
+from logtrial.labels.incidents import make_incidents
+from logtrial.labels.noise import load_noise, noise_levels, replay
 from scipy import stats
-
-from harness.errors import ConfigError
-from harness.incidents import make_incidents
-from harness.noise import load_noise, noise_levels, replay
 
 T0 = pd.Timestamp("2024-01-01", tz="UTC").value
 

@@ -31,8 +31,8 @@ def _yaml_blocks(text: str) -> list[str]:
 
 def test_readme_examples_are_valid(tmp_path: Path) -> None:
     # The format-file and experiment-file examples in the README load as written.
-    from harness.experiment import load_experiment
-    from harness.registry import format_from_file, miner_from_file
+    from logtrial.data.registry import format_from_file, miner_from_file
+    from logtrial.running.experiment import load_experiment
 
     blocks = _yaml_blocks((ROOT / "README.md").read_text())
     fmt = next(b for b in blocks if b.startswith("regex:"))

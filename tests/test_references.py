@@ -5,10 +5,10 @@ from __future__ import annotations
 from pathlib import Path
 
 import pandas as pd
-
-from harness.experiment import load_experiment
-from harness.report import load_results
-from harness.runs import RunStore, run_experiment
+from logtrial.output.report import load_results
+from logtrial.running.experiment import load_experiment
+from logtrial.running.runs import run_experiment
+from logtrial.running.store import RunStore
 
 ROOT = Path(__file__).resolve().parents[1]
 

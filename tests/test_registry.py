@@ -6,10 +6,9 @@ import re
 from pathlib import Path
 
 import pytest
-
-from harness.cli import main
-from harness.errors import ConfigError
-from harness.registry import get_entry, load_registry
+from logtrial.cli import main
+from logtrial.data.registry import get_entry, load_registry
+from logtrial.errors import ConfigError
 
 LOGHUB_SYSTEMS = {
     "Android", "Apache", "BGL", "Hadoop", "HDFS", "HealthApp", "HPC", "Linux", "Mac", "OpenSSH", "OpenStack",

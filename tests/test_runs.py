@@ -8,11 +8,11 @@ from pathlib import Path
 import pandas as pd
 import pytest
 from conftest import relay_registry
-
-from harness.cli import main
-from harness.errors import ConfigError
-from harness.experiment import load_experiment
-from harness.runs import RunStore, run_experiment
+from logtrial.cli import main
+from logtrial.errors import ConfigError
+from logtrial.running.experiment import load_experiment
+from logtrial.running.runs import run_experiment
+from logtrial.running.store import RunStore
 
 # A small simulated fleet (ours, invented) so that a whole grid runs in seconds.
 SMALL_REGISTRY = relay_registry("relay-small", "{nodes: 10, days: 45, seed: 11, line_rate: 2.0, failures: {rate_per_node_year: 12.0, lead_time_hours: [4, 72], precursor_visibility: 1.0}}")
@@ -105,7 +105,7 @@ def test_same_experiment_twice_gives_identical_results(tmp_path: Path, home: Pat
     exp2 = load_experiment(_experiment(tmp_path), output=tmp_path / "b")
     run_experiment(exp1, home, progress=False, track=False)
     run_experiment(exp2, home, progress=False, track=False)
-    from harness.report import write_report
+    from logtrial.output.report import write_report
 
     t1 = write_report(exp1.output, "a")["table"]
     t2 = write_report(exp2.output, "b")["table"]
@@ -117,7 +117,7 @@ def test_same_experiment_twice_gives_identical_results(tmp_path: Path, home: Pat
 
 def test_a_failing_run_is_recorded_and_the_rest_continue(tmp_path: Path, home: Path, monkeypatch) -> None:
     exp = load_experiment(_experiment(tmp_path, detectors=["pca", "rate_rule"], noise=[{"name": "clean"}]))
-    from detectors.pca import PCADetector
+    from logtrial.detectors.pca import PCADetector
 
     def boom(self, windows, labels):
         raise RuntimeError("deliberate failure inside fit")
@@ -201,7 +201,7 @@ def test_semantic_vocabulary_is_a_grid_axis(tmp_path: Path, home: Path) -> None:
     run_experiment(exp, home, progress=False, track=False)
     recs = {r["config"].get("vocabulary", {}).get("kind", "templates"): r for r in RunStore(exp.output).records()}
     assert recs["templates"]["status"] == recs["semantic"]["status"] == "finished"
-    from harness.report import write_report
+    from logtrial.output.report import write_report
 
     table = write_report(exp.output, "vocab")["table"]
     assert set(table["vocabulary"]) == {"templates", "semantic epochs=50 k=6"}

@@ -9,11 +9,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import stats
-
-from harness.errors import ConfigError
-from harness.scenario import FAILURE_MODES, PRECURSORS, TEMPLATES, plan_fleet
-from harness.simulate import (
+from logtrial.errors import ConfigError
+from logtrial.simulation.scenario import FAILURE_MODES, PRECURSORS, TEMPLATES, plan_fleet
+from logtrial.simulation.simulate import (
     LINE_REGEX,
     RECOMMENDED_MINER,
     Scenario,
@@ -22,6 +20,7 @@ from harness.simulate import (
     host_names,
     load_scenario,
 )
+from scipy import stats
 
 ROOT = Path(__file__).resolve().parents[1]
 QUIET = {"failures": {"rate_per_node_year": 0.0},
@@ -112,12 +111,12 @@ def test_every_line_matches_format_and_is_time_ordered(busy) -> None:
 
 
 def test_ingests_with_zero_quarantine_and_drain_parse_score(busy, tmp_path: Path) -> None:
-    # reference: Drain (He et al., ICWS 2017) as implemented in harness.mining, whose output is
+    # reference: Drain (He et al., ICWS 2017) as implemented in logtrial.data.mining, whose output is
     # checked line for line against the drain3 library in tests/test_mining.py; grouping accuracy
     # as defined by Zhu et al., ICSE-SEIP 2019.
-    from harness.ingest import ingest_entry, read_events
-    from harness.parse_score import grouping_accuracy
-    from harness.registry import parse_entry
+    from logtrial.data.ingest import ingest_entry, read_events
+    from logtrial.data.parse_score import grouping_accuracy
+    from logtrial.data.registry import parse_entry
 
     sc, res = busy
     # a registry entry shaped like `radar-relay`, generating on demand into the cache
@@ -141,7 +140,7 @@ def test_ingests_with_zero_quarantine_and_drain_parse_score(busy, tmp_path: Path
 
 
 def test_cli_simulate_writes_and_overrides_seed(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
-    from harness.simulate import cli_simulate
+    from logtrial.simulation.simulate import cli_simulate
 
     cfg = tmp_path / "scenario.yaml"
     cfg.write_text("nodes: 3\ndays: 1\nseed: 5\n")
@@ -151,7 +150,7 @@ def test_cli_simulate_writes_and_overrides_seed(tmp_path: Path, capsys: pytest.C
 
 
 def test_registry_entry_matches_generator_format() -> None:
-    from harness.registry import load_registry
+    from logtrial.data.registry import load_registry
 
     registry = load_registry()
     if "radar-relay" not in registry:
@@ -166,7 +165,7 @@ def test_registry_entry_matches_generator_format() -> None:
 
 
 def test_incident_file_is_read_by_the_incident_reader(busy) -> None:
-    from harness.incidents import read_incidents
+    from logtrial.labels.incidents import read_incidents
 
     sc, res = busy
     inc = read_incidents(res.incidents_path)

@@ -7,11 +7,10 @@ import pandas as pd
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from harness.errors import ConfigError, DataError
-from harness.incidents import make_incidents, read_incidents, times_ns
-from harness.noise import replay
-from harness.splits import (
+from logtrial.errors import ConfigError, DataError
+from logtrial.labels.incidents import make_incidents, read_incidents, times_ns
+from logtrial.labels.noise import replay
+from logtrial.windowing.splits import (
     RANDOM_WARNING,
     LeakageError,
     Split,
@@ -22,7 +21,7 @@ from harness.splits import (
     split_labels,
     walk_forward,
 )
-from harness.windows import WindowSet, count_windows, label_windows, time_windows
+from logtrial.windowing.windows import WindowSet, count_windows, label_windows, time_windows
 
 T0 = pd.Timestamp("2024-01-01", tz="UTC")
 
@@ -200,8 +199,8 @@ def test_healthy_set_uses_reported_labels() -> None:
 
 
 def _simulated(tmp_path):
-    """Event table and truth of a small built-in scenario via harness.simulate (skips when absent)."""
-    sim = pytest.importorskip("harness.simulate", reason="harness.simulate (issue B) not available yet")
+    """Event table and truth of a small built-in scenario via logtrial.simulation.simulate (skips when absent)."""
+    sim = pytest.importorskip("logtrial.simulation.simulate", reason="logtrial.simulation.simulate (issue B) not available yet")
     scenario = sim.load_scenario({"days": 30, "nodes": 8, "seed": 3})
     res = sim.generate(scenario, tmp_path / "sim")
     lines = pd.Series(res.log_path.read_text().splitlines(), dtype="str")

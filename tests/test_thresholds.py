@@ -9,13 +9,12 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from logtrial.errors import ConfigError
+from logtrial.evaluation.alarms import merge_alerts
+from logtrial.evaluation.metrics import MetricError
+from logtrial.evaluation.thresholds import ThresholdPolicy, choose_threshold, load_policy
+from logtrial.labels.incidents import times_ns
 from sklearn import metrics as skm
-
-from harness.alarms import merge_alerts
-from harness.errors import ConfigError
-from harness.incidents import times_ns
-from harness.metrics import MetricError
-from harness.thresholds import ThresholdPolicy, choose_threshold, load_policy
 
 T0 = pd.Timestamp("2024-05-06", tz="UTC")
 
@@ -181,7 +180,7 @@ def test_max_alarms_on_hand_made_timeline() -> None:
 @pytest.mark.parametrize("seed", range(4))
 def test_max_alarms_respects_k_and_is_lowest(seed: int) -> None:
     # Reference: the direct definition, merging alerts at the chosen cut and at the next lower
-    # candidate with harness.alarms.merge_alerts (which the hand-worked timelines of
+    # candidate with logtrial.evaluation.alarms.merge_alerts (which the hand-worked timelines of
     # tests/test_metrics.py pin down).
     rng = np.random.default_rng(seed)
     ents = [f"e{i}" for i in range(5)]

@@ -8,12 +8,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.stats import percentileofscore
-
 from conftest import windows_from_counts
-from detectors.registry import create, load
-from detectors.two_stage import ecdf_rank
-from harness.errors import ConfigError
+from logtrial.detectors.registry import create, load
+from logtrial.detectors.two_stage import ecdf_rank
+from logtrial.errors import ConfigError
+from scipy.stats import percentileofscore
 
 
 def _data(seed: int = 0, n: int = 400) -> tuple[np.ndarray, np.ndarray]:
@@ -115,12 +114,12 @@ DECOY_SCENARIO = {
 def decoy_fleet(tmp_path_factory: pytest.TempPathFactory):
     """Node-hour windows, truth incidents, predict-24h labels and a chronological split of a fleet with decoys."""
     try:
-        sim_mod = importlib.import_module("harness.simulate")
-        reg = importlib.import_module("harness.registry")
-        from harness.incidents import read_incidents
-        from harness.ingest import ingest_files
-        from harness.splits import chronological_split
-        from harness.windows import label_windows, time_windows
+        sim_mod = importlib.import_module("logtrial.simulation.simulate")
+        reg = importlib.import_module("logtrial.data.registry")
+        from logtrial.data.ingest import ingest_files
+        from logtrial.labels.incidents import read_incidents
+        from logtrial.windowing.splits import chronological_split
+        from logtrial.windowing.windows import label_windows, time_windows
     except ImportError as exc:
         pytest.skip(f"simulated-scenario checks need the simulator and ingest ({exc})")
     out = tmp_path_factory.mktemp("decoys")
@@ -139,8 +138,8 @@ def decoy_fleet(tmp_path_factory: pytest.TempPathFactory):
 
 def _false_alarms_per_predicted(name: str, params: dict, seed: int, fleet) -> float:
     """The harness's identical rules: best-F1 threshold on validation, incident metrics on test."""
-    from harness.alarms import incident_metrics
-    from harness.thresholds import choose_threshold
+    from logtrial.evaluation.alarms import incident_metrics
+    from logtrial.evaluation.thresholds import choose_threshold
 
     ws, incidents, labels, split, horizon = fleet
     det = create(name, params, seed=seed)

@@ -5,11 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from scipy.stats import spearmanr
-from sklearn.metrics import adjusted_rand_score
-
-from harness.errors import ConfigError, DataError
-from harness.vocabulary import (
+from logtrial.errors import ConfigError, DataError
+from logtrial.windowing.vocabulary import (
     apply_vocabulary,
     cbow_vectors,
     group_templates,
@@ -19,7 +16,9 @@ from harness.vocabulary import (
     template_vectors,
     tokenize,
 )
-from harness.windows import time_windows
+from logtrial.windowing.windows import time_windows
+from scipy.stats import spearmanr
+from sklearn.metrics import adjusted_rand_score
 
 # A constructed vocabulary: four topics with words of their own, templates drawing five topic
 # words each (with wildcards between) plus two generic words shared by every topic.

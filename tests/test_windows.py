@@ -7,10 +7,9 @@ import pandas as pd
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-
-from harness.errors import ConfigError
-from harness.incidents import incidents_from_sessions, incidents_from_tags, make_incidents, times_ns
-from harness.windows import (
+from logtrial.errors import ConfigError
+from logtrial.labels.incidents import incidents_from_sessions, incidents_from_tags, make_incidents, times_ns
+from logtrial.windowing.windows import (
     WindowSet,
     build_windows,
     count_windows,

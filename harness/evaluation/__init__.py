@@ -1,0 +1,1 @@
+"""Evaluation stage: threshold policies, window metrics, alarms matched to incidents, intervals."""

@@ -1,0 +1,1 @@
+"""Output stage: reports (tables, plots) and the regression gate."""

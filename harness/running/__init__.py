@@ -1,0 +1,1 @@
+"""Running stage: experiment grids, the runner, execution engines and run tracking."""

@@ -1,0 +1,1 @@
+"""Windowing stage: windows over events, event vocabularies, and leakage-free splits."""

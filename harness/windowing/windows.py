@@ -1,0 +1,526 @@
+"""Windows: cut an event table into session, time or count windows with counts, sequences and labels."""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+import scipy.sparse as sp
+from logtrial.errors import ConfigError, DataError
+from logtrial.labels.incidents import from_ns, times_ns
+
+
+@dataclass
+class WindowSet:
+    """A set of windows over one event table: metadata, count matrix, ragged sequences, labels.
+
+    - ``meta``: one row per window, columns ``id`` (int64, 0..n-1), ``entity`` (str),
+      ``start`` and ``end`` (UTC timestamps, end exclusive), ``n_events`` (int64).
+    - ``counts``: CSR matrix, windows x vocabulary, event occurrences per window.
+    - ``seq_values`` / ``seq_offsets``: ragged event-id sequences in time order;
+      window i holds ``seq_values[seq_offsets[i]:seq_offsets[i+1]]``.
+    - ``labels``: optional int8 array (1 = positive for the task, 0 = negative,
+      -1 = excluded from training for the task, e.g. windows inside a failure for
+      ``predict``).
+    - ``vocab_size``: number of distinct event ids (columns of ``counts``).
+    """
+
+    meta: pd.DataFrame
+    counts: sp.csr_matrix
+    seq_values: np.ndarray
+    seq_offsets: np.ndarray
+    vocab_size: int
+    labels: np.ndarray | None = None
+    info: dict = field(default_factory=dict)
+
+    def __len__(self) -> int:
+        """Number of windows."""
+        return len(self.meta)
+
+    def sequence(self, i: int) -> np.ndarray:
+        """Event-id sequence of window ``i``."""
+        return self.seq_values[self.seq_offsets[i] : self.seq_offsets[i + 1]]
+
+    def subset(self, index: np.ndarray) -> "WindowSet":
+        """Windows at the given positions (or boolean mask), ids kept, sequences repacked."""
+        idx = np.asarray(index)
+        if idx.dtype == bool:
+            idx = np.flatnonzero(idx)
+        starts = self.seq_offsets[idx]
+        ends = self.seq_offsets[idx + 1]
+        lengths = ends - starts
+        offsets = np.zeros(len(idx) + 1, dtype=np.int64)
+        np.cumsum(lengths, out=offsets[1:])
+        if len(idx):
+            gather = np.repeat(starts - offsets[:-1], lengths) + np.arange(offsets[-1])
+            values = self.seq_values[gather]
+        else:
+            values = self.seq_values[:0]
+        return WindowSet(
+            meta=self.meta.iloc[idx].reset_index(drop=True),
+            counts=self.counts[idx],
+            seq_values=values,
+            seq_offsets=offsets,
+            vocab_size=self.vocab_size,
+            labels=None if self.labels is None else self.labels[idx],
+            info=dict(self.info),
+        )
+
+
+# ---------------------------------------------------------------------------
+# Builders
+#
+# Conventions: events are ordered per window key in time order (stable, so lines
+# with equal timestamps keep file order). Time windows are aligned to the Unix
+# epoch: window k of a (size, step) set covers [k*step, k*step + size), which for
+# tumbling windows equals ``pd.Grouper(freq=size, origin="epoch")``. Empty windows
+# are not produced. Session and count windows run from their first event to just
+# after their last one: ``end = last event time + 1 microsecond`` (end exclusive,
+# like every window). Windows are ordered by (key, start). Session windows carry
+# one extra meta column, ``group`` (the session key).
+# ---------------------------------------------------------------------------
+
+_ONE_US = 1_000
+TASKS = ("detect", "predict")
+WINDOW_KINDS = ("session", "time", "count")
+
+
+@dataclass(frozen=True)
+class WindowSpec:
+    """How to cut windows: kind session | time (size, step) | count (n, step)."""
+
+    kind: str
+    size: pd.Timedelta | None = None
+    step: pd.Timedelta | int | None = None
+    n: int | None = None
+
+    def as_dict(self) -> dict:
+        """Plain, canonical form for hashing and run records."""
+        out: dict = {"kind": self.kind}
+        if self.size is not None:
+            out["size"] = str(self.size)
+        if self.n is not None:
+            out["n"] = int(self.n)
+        if self.step is not None:
+            out["step"] = str(self.step) if isinstance(self.step, pd.Timedelta) else int(self.step)
+        return out
+
+
+def parse_duration(value: object, field_name: str) -> pd.Timedelta:
+    """A duration from a string ('1h', '2 days'), a Timedelta, or a number of seconds; ConfigError naming the field."""
+    if isinstance(value, bool) or value is None:
+        raise ConfigError(f"{field_name}: expected a duration such as '1h', got {value!r}")
+    try:
+        if isinstance(value, (int, float, np.integer, np.floating)):
+            td = pd.Timedelta(seconds=float(value))
+        else:
+            # "2d" means two days; pandas is retiring the lower-case unit, so spell it "D".
+            text = re.sub(r"(?<=\d)\s*d\b", "D", value) if isinstance(value, str) else value
+            td = pd.Timedelta(text)
+    except (ValueError, TypeError) as exc:
+        raise ConfigError(f"{field_name}: expected a duration such as '1h', got {value!r}") from exc
+    if pd.isna(td):
+        raise ConfigError(f"{field_name}: expected a duration such as '1h', got {value!r}")
+    return td
+
+
+def load_window_spec(source: dict | WindowSpec, where: str = "windows") -> WindowSpec:
+    """Validate a window config dict into a WindowSpec; ConfigError names the field."""
+    if isinstance(source, WindowSpec):
+        source = source.as_dict()
+    if not isinstance(source, dict):
+        raise ConfigError(f"{where}: expected a mapping, got {type(source).__name__}")
+    allowed = {"kind", "size", "step", "n"}
+    unknown = sorted(set(source) - allowed)
+    if unknown:
+        raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: {sorted(allowed)})")
+    kind = source.get("kind")
+    if kind not in WINDOW_KINDS:
+        raise ConfigError(f"{where}.kind: must be one of {list(WINDOW_KINDS)}, got {kind!r}")
+    if kind == "session":
+        extra = [k for k in ("size", "step", "n") if source.get(k) is not None]
+        if extra:
+            raise ConfigError(f"{where}.{extra[0]}: not used by session windows")
+        return WindowSpec(kind="session")
+    if kind == "time":
+        if source.get("n") is not None:
+            raise ConfigError(f"{where}.n: not used by time windows (use size)")
+        if "size" not in source:
+            raise ConfigError(f"{where}.size: required for time windows")
+        size = parse_duration(source["size"], f"{where}.size")
+        if size <= pd.Timedelta(0):
+            raise ConfigError(f"{where}.size: must be positive, got {size}")
+        step = size if source.get("step") is None else parse_duration(source["step"], f"{where}.step")
+        if step <= pd.Timedelta(0):
+            raise ConfigError(f"{where}.step: must be positive, got {step}")
+        if step > size:
+            raise ConfigError(f"{where}.step: must not exceed size ({size}), got {step}")
+        return WindowSpec(kind="time", size=size, step=step)
+    if source.get("size") is not None:
+        raise ConfigError(f"{where}.size: not used by count windows (use n)")
+    n = _positive_int(source.get("n"), f"{where}.n")
+    step = n if source.get("step") is None else _positive_int(source.get("step"), f"{where}.step")
+    if step > n:
+        raise ConfigError(f"{where}.step: must not exceed n ({n}), got {step}")
+    return WindowSpec(kind="count", n=n, step=step)
+
+
+def _positive_int(value: object, field_name: str) -> int:
+    """A positive integer or ConfigError naming the field."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+        raise ConfigError(f"{field_name}: expected a positive integer, got {value!r}")
+    if value <= 0:
+        raise ConfigError(f"{field_name}: must be positive, got {value}")
+    return int(value)
+
+
+def build_windows(events: pd.DataFrame, vocab_size: int, spec: WindowSpec | dict) -> WindowSet:
+    """Windows of the configured kind over an event table."""
+    spec = load_window_spec(spec)
+    if spec.kind == "session":
+        return session_windows(events, vocab_size)
+    if spec.kind == "time":
+        return time_windows(events, vocab_size, spec.size, spec.step)
+    return count_windows(events, vocab_size, spec.n, spec.step)
+
+
+def _check_vocab(ev: np.ndarray, vocab_size: int) -> None:
+    """Event ids must lie in [0, vocab_size)."""
+    if len(ev) and (ev.min() < 0 or ev.max() >= vocab_size):
+        raise DataError(f"events.event: ids must lie in [0, {vocab_size}), got range [{ev.min()}, {ev.max()}]")
+
+
+def _assemble(
+    key_codes: np.ndarray,
+    win_key: np.ndarray,
+    ev_idx: np.ndarray,
+    events_ev: np.ndarray,
+    starts: np.ndarray | None,
+    ends: np.ndarray | None,
+    ts: np.ndarray,
+    vocab_size: int,
+    info: dict,
+    entity: tuple[np.ndarray, np.ndarray],
+    extra_meta: dict[str, tuple[np.ndarray, np.ndarray]] | None = None,
+) -> WindowSet:
+    """Turn (window key, event index) pairs sorted by window into a WindowSet.
+
+    ``win_key`` is a per-pair secondary key (window number within the key code);
+    pairs must already be sorted by (key_codes, win_key, time). ``entity`` and each
+    ``extra_meta`` value are (unique names, per-pair codes): a window takes the name
+    of its first pair. ``starts``/``ends`` None means first event time / last event
+    time + 1 µs.
+    """
+    m = len(ev_idx)
+    if m == 0:
+        meta = pd.DataFrame(
+            {
+                "id": np.zeros(0, np.int64),
+                "entity": pd.array([], dtype="str"),
+                "start": from_ns(np.zeros(0, np.int64)),
+                "end": from_ns(np.zeros(0, np.int64)),
+                "n_events": np.zeros(0, np.int64),
+            }
+        )
+        for name in extra_meta or {}:
+            meta[name] = pd.array([], dtype="str")
+        return WindowSet(meta, sp.csr_matrix((0, vocab_size), dtype=np.int32), np.zeros(0, np.int32), np.zeros(1, np.int64), vocab_size, info=info)
+    new = np.ones(m, dtype=bool)
+    new[1:] = (key_codes[1:] != key_codes[:-1]) | (win_key[1:] != win_key[:-1])
+    first = np.flatnonzero(new)
+    n_win = len(first)
+    offsets = np.r_[first, m].astype(np.int64)
+    n_events = np.diff(offsets)
+    values = events_ev[ev_idx].astype(np.int32, copy=False)
+    # windows are contiguous runs of pairs: their sequences are the CSR rows before summing duplicates
+    counts = sp.csr_matrix((np.ones(m, dtype=np.int32), values.copy(), offsets.copy()), shape=(n_win, vocab_size))
+    counts.sum_duplicates()
+    if starts is None:
+        start_ns = ts[ev_idx[first]]
+        end_ns = ts[ev_idx[offsets[1:] - 1]] + _ONE_US
+    else:
+        start_ns, end_ns = starts[first], ends[first]
+    meta = pd.DataFrame(
+        {
+            "id": np.arange(n_win, dtype=np.int64),
+            "entity": pd.array(entity[0][entity[1][first]], dtype="str"),
+            "start": from_ns(start_ns),
+            "end": from_ns(end_ns),
+            "n_events": n_events.astype(np.int64),
+        }
+    )
+    for name, (names, codes) in (extra_meta or {}).items():
+        meta[name] = pd.array(names[codes[first]], dtype="str")
+    return WindowSet(meta, counts, values, offsets, vocab_size, info=info)
+
+
+def _entity_sorted(events: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Entity codes, entity names per event, ns times, and the (entity, time) stable order."""
+    codes, uniques = pd.factorize(events["entity"].fillna("").astype("str"), sort=True)
+    ts = times_ns(events["ts"])
+    order = np.lexsort((ts, codes))
+    return codes, np.asarray(uniques, dtype=object), ts, order
+
+
+def session_windows(events: pd.DataFrame, vocab_size: int) -> WindowSet:
+    """One window per session key (``group``); events without a key are left out.
+
+    ``meta.entity`` is the entity of the session's first event; ``meta.group`` holds the key.
+    """
+    ev = events["event"].to_numpy()
+    _check_vocab(ev, vocab_size)
+    grp = events["group"].astype("str")
+    has = (grp.notna() & (grp != "")).to_numpy()
+    idx_keep = np.flatnonzero(has)
+    codes, uniques = pd.factorize(grp.iloc[idx_keep], sort=True)
+    ts_all = times_ns(events["ts"])
+    order = np.lexsort((ts_all[idx_keep], codes))
+    ev_idx = idx_keep[order]
+    codes_sorted = codes[order]
+    ent_codes, ent_names = pd.factorize(events["entity"].fillna("").astype("str"))
+    info = {"kind": "session", "dropped_events": int(len(events) - len(idx_keep))}
+    ws = _assemble(
+        codes_sorted, np.zeros(len(ev_idx), np.int64), ev_idx, ev, None, None, ts_all, vocab_size, info,
+        entity=(np.asarray(ent_names, dtype=object), ent_codes[ev_idx]),
+        extra_meta={"group": (np.asarray(uniques, dtype=object), codes_sorted)},
+    )
+    return ws
+
+
+def time_windows(
+    events: pd.DataFrame, vocab_size: int, size: pd.Timedelta, step: pd.Timedelta | None = None
+) -> WindowSet:
+    """Fixed (step None or = size) or sliding time windows per entity, aligned to the Unix epoch."""
+    size = pd.Timedelta(size)
+    step = size if step is None else pd.Timedelta(step)
+    if size <= pd.Timedelta(0):
+        raise ConfigError(f"windows.size: must be positive, got {size}")
+    if step <= pd.Timedelta(0) or step > size:
+        raise ConfigError(f"windows.step: must be positive and at most size ({size}), got {step}")
+    ev = events["event"].to_numpy()
+    _check_vocab(ev, vocab_size)
+    codes, names, ts, order = _entity_sorted(events)
+    s, d = size.value, step.value
+    t = ts[order]
+    k_hi = np.floor_divide(t, d)
+    if d == s:
+        k = k_hi
+        pair_ev = order
+        pair_codes = codes[order]
+    else:
+        k_lo = np.floor_divide(t - s, d) + 1
+        reps = (k_hi - k_lo + 1).astype(np.int64)
+        total = int(reps.sum())
+        cum = np.zeros(len(reps) + 1, dtype=np.int64)
+        np.cumsum(reps, out=cum[1:])
+        within = np.arange(total, dtype=np.int64) - np.repeat(cum[:-1], reps)
+        pos = np.repeat(np.arange(len(order), dtype=np.int64), reps)
+        k = k_lo[pos] + within
+        # Pairs are generated in (entity, time) order; a stable sort on the combined
+        # (entity, k) key yields (entity, k, time) order.
+        k_min = int(k.min()) if total else 0
+        span = int(k.max()) - k_min + 1 if total else 1
+        pair_codes = codes[order][pos].astype(np.int64)
+        if (int(pair_codes.max()) + 1) * span < 2**62:
+            o2 = np.argsort(pair_codes * span + (k - k_min), kind="stable")
+        else:
+            o2 = np.lexsort((pos, k, pair_codes))
+        k = k[o2]
+        pair_ev = order[pos[o2]]
+        pair_codes = codes[pair_ev]
+    starts = k * d
+    info = {"kind": "time", "size": size, "step": step}
+    return _assemble(pair_codes, k, pair_ev, ev, starts, starts + s, ts, vocab_size, info, entity=(names, pair_codes))
+
+
+def count_windows(events: pd.DataFrame, vocab_size: int, n: int, step: int | None = None) -> WindowSet:
+    """Windows of ``n`` consecutive events per entity, advancing by ``step`` events (default n).
+
+    The last window of an entity may be shorter; a window whose events all lie in
+    the previous window is not produced.
+    """
+    n = _positive_int(n, "windows.n")
+    step = n if step is None else _positive_int(step, "windows.step")
+    if step > n:
+        raise ConfigError(f"windows.step: must not exceed n ({n}), got {step}")
+    ev = events["event"].to_numpy()
+    _check_vocab(ev, vocab_size)
+    codes, names, ts, order = _entity_sorted(events)
+    c = codes[order]
+    m = len(order)
+    if m == 0:
+        info = {"kind": "count", "n": n, "step": step}
+        return _assemble(c, c, order, ev, None, None, ts, vocab_size, info, entity=(names, c))
+    first = np.flatnonzero(np.r_[True, c[1:] != c[:-1]])
+    size_per_ent = np.diff(np.r_[first, m])
+    grp_start = np.repeat(first, size_per_ent)
+    p = np.arange(m, dtype=np.int64) - grp_start
+    cnt = np.repeat(size_per_ent, size_per_ent).astype(np.int64)
+    j_last = np.where(cnt > n, np.minimum((cnt - 1) // step, 1 + (cnt - n - 1) // step), 0)
+    k_lo = np.maximum(0, -((n - 1 - p) // step))  # ceil((p - n + 1) / step), at least 0
+    k_hi = np.minimum(p // step, j_last)
+    reps = np.maximum(k_hi - k_lo + 1, 0)
+    total = int(reps.sum())
+    cum = np.zeros(m + 1, dtype=np.int64)
+    np.cumsum(reps, out=cum[1:])
+    within = np.arange(total, dtype=np.int64) - np.repeat(cum[:-1], reps)
+    pos = np.repeat(np.arange(m, dtype=np.int64), reps)
+    k = k_lo[pos] + within
+    k_span = int(k.max()) + 1 if total else 1
+    o2 = np.argsort(c[pos].astype(np.int64) * k_span + k, kind="stable")  # (entity, k, time) order; k_span <= m
+    k, pos = k[o2], pos[o2]
+    pair_ev = order[pos]
+    info = {"kind": "count", "n": n, "step": step}
+    pair_codes = c[pos]
+    return _assemble(pair_codes, k, pair_ev, ev, None, None, ts, vocab_size, info, entity=(names, pair_codes))
+
+
+# ---------------------------------------------------------------------------
+# Labels
+#
+# Incidents are closed intervals [start, end]; windows are [start, end). A window
+# overlaps an incident when incident.start < window.end and incident.end >=
+# window.start, for the same entity; an incident whose entity is "" applies to
+# every entity. Session windows are matched by key instead of time when both the
+# window meta and the incident table have a ``group`` column: a session overlaps
+# the incidents that carry its key (incidents without a key fall back to time).
+# ---------------------------------------------------------------------------
+
+
+def _window_arrays(windows: WindowSet) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Entity names, start ns and end ns of every window."""
+    meta = windows.meta
+    return (
+        meta["entity"].fillna("").astype(str).to_numpy(dtype=object),
+        times_ns(meta["start"]),
+        times_ns(meta["end"]),
+    )
+
+
+def _overlaps(w_ent: np.ndarray, ws: np.ndarray, we: np.ndarray, incidents: pd.DataFrame) -> np.ndarray:
+    """Per window: does it overlap any of the given incidents in time (same entity or global)?"""
+    out = np.zeros(len(ws), dtype=bool)
+    if len(incidents) == 0 or len(ws) == 0:
+        return out
+    i_ent = incidents["entity"].fillna("").astype(str).to_numpy(dtype=object)
+    i_s, i_e = times_ns(incidents["start"]), times_ns(incidents["end"])
+
+    def hit(sel_w: np.ndarray, sel_i: np.ndarray) -> np.ndarray:
+        """Overlap of the selected windows with the selected incidents (prefix max of ends)."""
+        o = np.argsort(i_s[sel_i], kind="stable")
+        s_sorted = i_s[sel_i][o]
+        e_cummax = np.maximum.accumulate(i_e[sel_i][o])
+        j = np.searchsorted(s_sorted, we[sel_w], side="left") - 1  # last incident with start < window end
+        ok = j >= 0
+        res = np.zeros(len(sel_w), dtype=bool)
+        res[ok] = e_cummax[j[ok]] >= ws[sel_w][ok]
+        return res
+
+    glob = i_ent == ""
+    if glob.any():
+        out |= hit(np.arange(len(ws)), np.flatnonzero(glob))
+    if (~glob).any():
+        all_names = np.concatenate([w_ent, i_ent[~glob]])
+        codes, _ = pd.factorize(all_names)
+        w_codes, i_codes = codes[: len(w_ent)], codes[len(w_ent) :]
+        w_order = np.argsort(w_codes, kind="stable")
+        w_sorted = w_codes[w_order]
+        i_idx = np.flatnonzero(~glob)
+        for code in np.unique(i_codes):
+            lo, hi = np.searchsorted(w_sorted, [code, code + 1])
+            if lo == hi:
+                continue
+            sel_w = w_order[lo:hi]
+            out[sel_w] |= hit(sel_w, i_idx[i_codes == code])
+    return out
+
+
+def _overlap_mask(windows: WindowSet, incidents: pd.DataFrame) -> np.ndarray:
+    """Per window: does it overlap any given incident (by session key when both sides have one)?"""
+    w_ent, ws, we = _window_arrays(windows)
+    if "group" in windows.meta.columns and "group" in incidents.columns:
+        keyed = incidents["group"].notna().to_numpy() & (incidents["group"].astype(str) != "").to_numpy()
+        out = windows.meta["group"].astype(str).isin(incidents.loc[keyed, "group"].astype(str)).to_numpy()
+        return out | _overlaps(w_ent, ws, we, incidents.loc[~keyed])
+    return _overlaps(w_ent, ws, we, incidents)
+
+
+def _window_size(windows: WindowSet) -> pd.Timedelta | None:
+    """Nominal window length for time windows, else None (length varies)."""
+    size = windows.info.get("size")
+    return None if size is None else pd.Timedelta(size)
+
+
+def check_task(task: str, horizon: pd.Timedelta | None, windows: WindowSet | None = None) -> pd.Timedelta | None:
+    """Validate a task name and horizon (against the window size for time windows)."""
+    if task not in TASKS:
+        raise ConfigError(f"task.name: must be one of {list(TASKS)}, got {task!r}")
+    if task == "detect":
+        return None
+    if horizon is None:
+        raise ConfigError("task.horizon: required for the predict task")
+    horizon = parse_duration(horizon, "task.horizon")
+    if horizon <= pd.Timedelta(0):
+        raise ConfigError(f"task.horizon: must be positive, got {horizon}")
+    size = None if windows is None else _window_size(windows)
+    if size is not None and horizon < size:
+        raise ConfigError(f"task.horizon must be at least the window size ({size}), got {horizon}")
+    return horizon
+
+
+def label_windows(
+    windows: WindowSet, incidents: pd.DataFrame, task: str, horizon: pd.Timedelta | None = None
+) -> np.ndarray:
+    """Window labels (int8) for a task: detect 1/0; predict 1 (failure ahead) / 0 / -1 (inside a failure)."""
+    horizon = check_task(task, horizon, windows)
+    failures = incidents.loc[incidents["kind"] == "failure"]
+    inside = _overlap_mask(windows, failures)
+    if task == "detect":
+        return inside.astype(np.int8)
+    w_ent, ws, we = _window_arrays(windows)
+    ahead = _failure_ahead(w_ent, we, failures, horizon.value)
+    labels = np.where(ahead, 1, 0).astype(np.int8)
+    labels[inside] = -1
+    return labels
+
+
+def _failure_ahead(w_ent: np.ndarray, we: np.ndarray, failures: pd.DataFrame, h: int) -> np.ndarray:
+    """Per window: does a failure of its entity (or a global one) start in [end, end + horizon)?"""
+    out = np.zeros(len(we), dtype=bool)
+    if len(failures) == 0 or len(we) == 0:
+        return out
+    f_ent = failures["entity"].fillna("").astype(str).to_numpy(dtype=object)
+    f_s = times_ns(failures["start"])
+
+    def hit(sel_w: np.ndarray, starts: np.ndarray) -> np.ndarray:
+        """Does any of the given failure starts fall in [end, end + horizon) of the selected windows?"""
+        starts = np.sort(starts)
+        lo = np.searchsorted(starts, we[sel_w], side="left")
+        hi = np.searchsorted(starts, we[sel_w] + h, side="left")
+        return hi > lo
+
+    glob = f_ent == ""
+    if glob.any():
+        out |= hit(np.arange(len(we)), f_s[glob])
+    if (~glob).any():
+        codes, _ = pd.factorize(np.concatenate([w_ent, f_ent[~glob]]))
+        w_codes, f_codes = codes[: len(w_ent)], codes[len(w_ent) :]
+        w_order = np.argsort(w_codes, kind="stable")
+        w_sorted = w_codes[w_order]
+        fs = f_s[~glob]
+        for code in np.unique(f_codes):
+            lo, hi = np.searchsorted(w_sorted, [code, code + 1])
+            if lo == hi:
+                continue
+            sel_w = w_order[lo:hi]
+            out[sel_w] |= hit(sel_w, fs[f_codes == code])
+    return out
+
+
+def window_incident_kind(windows: WindowSet, incidents: pd.DataFrame) -> np.ndarray:
+    """Per window, the kind of incident it overlaps: 'failure' (wins), 'other' or 'none'."""
+    fail = _overlap_mask(windows, incidents.loc[incidents["kind"] == "failure"])
+    other = _overlap_mask(windows, incidents.loc[incidents["kind"] == "other"])
+    return np.where(fail, "failure", np.where(other, "other", "none")).astype(object)
