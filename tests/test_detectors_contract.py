@@ -197,30 +197,8 @@ def test_nan_scores_are_refused(make_windows) -> None:
         Nan().fit(ws).score(ws)
 
 
-PLUGIN = '''
-import numpy as np
-from logtrial.detectors.base import Detector, DetectorParams
-
-
-class MaxCountParams(DetectorParams):
-    scale: float = 1.0
-
-
-class MaxCount(Detector):
-    """Scores a window by its largest single event count."""
-
-    name = "max_count"
-    reads = "counts"
-    trains_on = "all"
-    Params = MaxCountParams
-
-    def _fit(self, windows, labels):
-        self.typical_ = float(windows.counts.max(axis=1).toarray().mean())
-
-    def _score(self, windows):
-        peak = windows.counts.max(axis=1).toarray().ravel()
-        return self.params.scale * (peak - self.typical_)
-'''
+# The plugin of DEVELOPERS.md, as shipped in examples/plugin (one source for both).
+PLUGIN = (Path(__file__).resolve().parents[1] / "examples" / "plugin" / "my_detectors.py").read_text()
 
 
 @pytest.fixture()

@@ -7,6 +7,7 @@ specification, PyPA), read through the standard library's ``importlib.metadata``
 from __future__ import annotations
 
 import re
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -31,9 +32,11 @@ def test_the_guide_shows_the_example_package_as_it_is() -> None:
 def test_the_example_plugin_installs_and_scores(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, make_windows) -> None:
     pytest.importorskip("setuptools")
     target = tmp_path / "site"
+    source = tmp_path / "plugin"
+    shutil.copytree(EXAMPLE, source)  # build from a copy: the checkout stays clean
     # A real build and install of the example package (no network: build isolation off, no deps).
     subprocess.run([sys.executable, "-m", "pip", "install", "-q", "--no-deps", "--no-build-isolation",
-                    "--target", str(target), str(EXAMPLE)], check=True, capture_output=True)
+                    "--target", str(target), str(source)], check=True, capture_output=True)
     assert list(target.glob("my_detectors-*.dist-info/entry_points.txt"))
     monkeypatch.syspath_prepend(str(target))
     from logtrial.detectors.registry import available, create
