@@ -60,8 +60,10 @@ def cmd_fetch(args: argparse.Namespace) -> int:
     entries = select_entries(args.names, _registry(args), load_groups(paths))
     home = home_dir()
 
+    label = {"fetched": "fetched and verified", "present": "present, verified against the lock"}
+
     def report(out) -> None:  # type: ignore[no-untyped-def]
-        print(f"{out.name}: {out.state}: {out.detail}", flush=True)
+        print(f"{out.name}: {label.get(out.state, out.state)}: {out.detail}", flush=True)
         if out.first_use:
             print(f"  no pinned checksum for {', '.join(out.first_use)}: this first fetch recorded size and sha256 "
                   f"in {home / LOCK_NAME} (trust on first use); later fetches must match", flush=True)

@@ -217,7 +217,7 @@ def test_fetch_several_over_http_matches_the_pins(served, home: Path, loghub_dir
     root, handler = served
     assert main(["fetch", "bgl-2k", "hdfs-2k"]) == 0
     out = capsys.readouterr().out
-    assert "bgl-2k: fetched:" in out and "hdfs-2k: fetched:" in out and "4 of 4 file(s) match their pinned" in out
+    assert "bgl-2k: fetched and verified:" in out and "hdfs-2k: fetched and" in out and "4 of 4 file(s) match their pinned" in out
     assert "2 fetched, 0 failed" in out and "trust on first use" not in out
     asked = sorted(p for p, _ in handler.seen)
     assert asked == sorted("/" + s.mirror for n in ("bgl-2k", "hdfs-2k") for s in load_registry()[n].sources)
@@ -231,7 +231,7 @@ def test_fetch_several_over_http_matches_the_pins(served, home: Path, loghub_dir
     handler.seen.clear()
     assert main(["fetch", "hdfs-2k", "bgl-2k"]) == 0
     out = capsys.readouterr().out
-    assert "hdfs-2k: present:" in out and "bgl-2k: present:" in out and "2 present" in out
+    assert "hdfs-2k: present, verified against the lock:" in out and "bgl-2k: present," in out and "2 present" in out
     assert handler.seen == []
 
 
@@ -239,7 +239,7 @@ def test_mirror_folder_is_the_offline_path(served, home: Path, loghub_dir: Path,
     _, handler = served
     assert main(["fetch", "apache-2k", "--mirror", str(loghub_dir)]) == 0
     assert handler.seen == []  # nothing downloaded
-    assert "apache-2k: fetched:" in capsys.readouterr().out
+    assert "apache-2k: fetched and verified:" in capsys.readouterr().out
 
 
 def test_interrupted_download_resumes(served, home: Path, loghub_dir: Path) -> None:
@@ -284,7 +284,7 @@ def test_missing_file_is_a_404_for_that_entry_only(served, home: Path, capsys) -
     out = capsys.readouterr().out
     line = next(x for x in out.splitlines() if x.startswith("hdfs-2k:"))
     assert line.startswith("hdfs-2k: failed:") and "/HDFS/HDFS_2k.log: download failed: HTTP 404" in line
-    assert "bgl-2k: fetched:" in out and "1 fetched, 1 failed" in out
+    assert "bgl-2k: fetched and verified:" in out and "1 fetched, 1 failed" in out
     assert (home / "data" / "bgl-2k" / "BGL_2k.log").is_file() and not (home / "data" / "hdfs-2k").exists()
 
 
@@ -307,7 +307,8 @@ def test_group_fetch_reports_every_entry(served, home: Path, capsys) -> None:
     assert main(["fetch", "samples", "radar-relay"]) == 1
     out = capsys.readouterr().out.splitlines()
     names = set(load_groups()["samples"]) | {"radar-relay"}
-    states = {line.split(": ")[0]: line.split(": ")[1] for line in out if line.split(": ")[0] in names}
+    states = {line.split(": ")[0]: line.split(": ")[1].split()[0].strip(",") for line in out
+              if line.split(": ")[0] in names}
     assert set(states) == names
     assert states["mac-2k"] == "failed" and states["radar-relay"] == "skipped"
     assert sum(v == "fetched" for v in states.values()) == 15
@@ -321,7 +322,7 @@ def test_unpinned_source_is_recorded_on_first_use(served, home: Path, tmp_path: 
                       + "/Apache/Apache_2k.log'}]\n" + ENTRY)
     assert main(["fetch", "full", "--registry", str(extra)]) == 0
     out = capsys.readouterr().out
-    assert "full: fetched:" in out and "no pinned checksums" in out
+    assert "full: fetched and verified:" in out and "no pinned checksums" in out
     assert "no pinned checksum for a.log: this first fetch recorded size and sha256" in out
     assert "(trust on first use)" in out
     data = (root / "Apache" / "Apache_2k.log").read_bytes()
