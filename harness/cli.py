@@ -53,7 +53,7 @@ def cmd_datasets(args: argparse.Namespace) -> int:
 
 def cmd_fetch(args: argparse.Namespace) -> int:
     """Acquire and verify one or more datasets (names or groups); report each; non-zero if any failed."""
-    from logtrial.data.acquire import LOCK_NAME, fetch_many
+    from logtrial.data.acquire import LOCK_NAME, FetchOutcome, fetch_many
     from logtrial.data.registry import home_dir, load_groups, select_entries
 
     paths = [Path(p) for p in getattr(args, "registry", None) or []]
@@ -62,7 +62,7 @@ def cmd_fetch(args: argparse.Namespace) -> int:
 
     label = {"fetched": "fetched and verified", "present": "present, verified against the lock"}
 
-    def report(out) -> None:  # type: ignore[no-untyped-def]
+    def report(out: FetchOutcome) -> None:
         print(f"{out.name}: {label.get(out.state, out.state)}: {out.detail}", flush=True)
         if out.first_use:
             print(f"  no pinned checksum for {', '.join(out.first_use)}: this first fetch recorded size and sha256 "

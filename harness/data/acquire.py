@@ -30,7 +30,7 @@ import urllib.parse
 import urllib.request
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
-from typing import BinaryIO, Callable, Iterator
+from typing import BinaryIO, Callable, Iterator, Literal
 
 from logtrial.data.registry import Entry, Source, home_dir, mirror_folder
 from logtrial.data.unpack import CHUNK, unpack_archive
@@ -234,7 +234,7 @@ def _relative(path: str, field: str, entry: str) -> PurePosixPath:
 
 
 def _origin(entry: Entry, src: Source, mirror: Path | None) -> tuple[str, Path | str]:
-    """Where a source comes from: ('copy', path) from the mirror folder when one is set and holds it, else ('url', url)."""
+    """Where a source comes from: ('copy', path) from a mirror folder that is set and holds it, else ('url', url)."""
     folder = mirror_folder(mirror)
     if folder is not None:
         if src.mirror is not None:
@@ -437,7 +437,7 @@ class FetchOutcome:
     """What happened to one dataset of a multi-dataset fetch."""
 
     name: str
-    state: str  # fetched | present | failed | skipped
+    state: Literal["fetched", "present", "failed", "skipped"]
     detail: str
     exit_code: int = 0
     first_use: list[str] = field(default_factory=list)  # files whose checksums this fetch recorded, unpinned

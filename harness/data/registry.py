@@ -358,8 +358,10 @@ def _resolve_base(entry: Entry, bases: dict[str, str], path: Path) -> Entry:
     from urllib.parse import quote
 
     for i, src in enumerate(entry.sources):
-        if src.base is None or src.url is not None:
+        if src.base is None:
             continue
+        if src.url is not None:
+            raise ConfigError(f"{path}: dataset '{entry.name}': sources.{i}: give `url` or `base`, not both")
         if src.base not in bases:
             known = ", ".join(sorted(bases)) or "none defined"
             raise ConfigError(f"{path}: dataset '{entry.name}': sources.{i}.base: unknown base {src.base!r} "
@@ -413,7 +415,8 @@ def select_entries(names: list[str], registry: dict[str, Entry], groups: dict[st
 
             close = difflib.get_close_matches(name, list(registry) + list(groups), n=3)
             hint = f" Did you mean: {', '.join(close)}?" if close else ""
-            raise ConfigError(f"unknown dataset or group '{name}'.{hint} Groups: {', '.join(sorted(groups)) or 'none'}; "
+            known = ", ".join(sorted(groups)) or "none"
+            raise ConfigError(f"unknown dataset or group '{name}'.{hint} Groups: {known}; "
                               "run `logtrial datasets` to list the datasets.")
     return list(chosen.values())
 
