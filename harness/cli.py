@@ -52,16 +52,34 @@ def cmd_datasets(args: argparse.Namespace) -> int:
 
 
 def cmd_fetch(args: argparse.Namespace) -> int:
-    """Acquire and verify one dataset."""
-    from logtrial.data.acquire import fetch
-    from logtrial.data.registry import get_entry, home_dir
+    """Acquire and verify one or more datasets (names or groups); report each; non-zero if any failed."""
+    from logtrial.data.acquire import LOCK_NAME, FetchOutcome, fetch_many
+    from logtrial.data.registry import home_dir, load_groups, select_entries
 
-    entry = get_entry(args.name, _registry(args))
-    res = fetch(entry, home=home_dir(), mirror=Path(args.mirror) if args.mirror else None, progress=True)
-    state = "already present, verified against the lock" if res.cached else "fetched and verified"
-    print(f"{entry.name}: {state}: {res.path}")
-    if res.recorded_hashes:
-        print("  first fetch: sizes and sha256 recorded in the lock file")
+    paths = [Path(p) for p in getattr(args, "registry", None) or []]
+    entries = select_entries(args.names, _registry(args), load_groups(paths))
+    home = home_dir()
+
+    label = {"fetched": "fetched and verified", "present": "present, verified against the lock"}
+
+    def report(out: FetchOutcome) -> None:
+        print(f"{out.name}: {label.get(out.state, out.state)}: {out.detail}", flush=True)
+        if out.first_use:
+            print(f"  no pinned checksum for {', '.join(out.first_use)}: this first fetch recorded size and sha256 "
+                  f"in {home / LOCK_NAME} (trust on first use); later fetches must match", flush=True)
+
+    if len(entries) > 1:
+        print(f"fetching {len(entries)} datasets into {home}", flush=True)
+    outcomes = fetch_many(entries, home=home, mirror=Path(args.mirror) if args.mirror else None,
+                          progress=True, on_done=report)
+    counts = {k: sum(o.state == k for o in outcomes) for k in ("fetched", "present", "skipped", "failed")}
+    if len(entries) > 1:
+        print(", ".join(f"{n} {k}" for k, n in counts.items() if n or k in ("fetched", "failed")))
+    failed = [o for o in outcomes if o.state == "failed"]
+    if failed:
+        print(f"logtrial fetch: {len(failed)} of {len(outcomes)} dataset(s) failed: "
+              f"{', '.join(o.name for o in failed)}", file=sys.stderr)
+        return max(o.exit_code for o in failed)
     return 0
 
 
@@ -235,10 +253,13 @@ def build_parser() -> argparse.ArgumentParser:
     sp = verb("datasets", cmd_datasets, "list the registry and what is on disk", "logtrial datasets")
     registry_opt(sp)
 
-    sp = verb("fetch", cmd_fetch, "acquire a dataset and verify its size and sha256",
-              "logtrial fetch bgl-2k --mirror ../shared/datasets/loghub-2k")
-    sp.add_argument("name", metavar="NAME")
-    sp.add_argument("--mirror", metavar="DIR", help="local folder holding the files (default: LOGTRIAL_MIRROR)")
+    sp = verb("fetch", cmd_fetch, "download (or copy from a mirror folder) datasets and verify size and sha256",
+              "logtrial fetch bgl-2k\n  logtrial fetch samples            # a group: every Loghub 2k sample\n"
+              "  logtrial fetch bgl-2k hdfs-2k --mirror /data/loghub   # offline, from a local copy")
+    sp.add_argument("names", metavar="NAME", nargs="+", help="dataset or group names (groups: samples, benchmarks)")
+    sp.add_argument("--mirror", metavar="DIR",
+                    help="offline: a local folder laid out like the source (default: LOGTRIAL_MIRROR; "
+                         "unset: download from the public source)")
     registry_opt(sp)
 
     sp = verb("ingest", cmd_ingest, "build (or reuse) the event table of a dataset or a log file",

@@ -16,6 +16,12 @@ def loghub_path() -> Path:
     return Path(os.environ.get("LOGTRIAL_LOGHUB_2K", LOGHUB_DEFAULT))
 
 
+# logtrial has no default mirror folder (without one it downloads from the public
+# source); the tests work offline, so they name the samples folder explicitly.
+if (loghub_path() / "BGL" / "BGL_2k.log").is_file():
+    os.environ.setdefault("LOGTRIAL_MIRROR", str(loghub_path()))
+
+
 @pytest.fixture(scope="session")
 def loghub_dir() -> Path:
     """The real Loghub 2k samples; skips (with the reason) when the folder is absent."""

@@ -634,7 +634,8 @@ def test_fetch_bgl_2k_from_shared_mirror(home: Path, loghub_dir: Path) -> None:
     assert read_lock(home)["bgl-2k"]["BGL_2k.log"]["sha256"] == hashlib.sha256(original).hexdigest()
     assert len(got.splitlines()) == 2000
     assert log_files(entry, res.path) == res.files
-    assert verify(entry, home) == {"BGL_2k.log": "ok", "BGL_2k.log_structured.csv": "ok"}
+    assert verify(entry, home) == {"BGL_2k.log": "ok", "BGL_2k.log_structured.csv": "ok",
+                                   "BGL_2k.log_templates.csv": "ok", "BGL_templates.csv": "ok"}
     assert fetch(entry, home=home, mirror=loghub_dir, progress=False).cached
 
 

@@ -28,13 +28,13 @@ import tempfile
 import urllib.error
 import urllib.parse
 import urllib.request
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
-from typing import BinaryIO, Iterator
+from typing import BinaryIO, Callable, Iterator, Literal
 
-from logtrial.data.registry import Entry, Source, home_dir, mirror_dir
+from logtrial.data.registry import Entry, Source, home_dir, mirror_folder
 from logtrial.data.unpack import CHUNK, unpack_archive
-from logtrial.errors import ConfigError, DataError
+from logtrial.errors import ConfigError, DataError, LogtrialError
 
 LOCK_NAME = "datasets.lock"
 TIMEOUT_S = 30.0
@@ -179,10 +179,15 @@ def _download(url: str, part: Path, desc: str, progress: bool, timeout: float) -
                 return  # the part already holds the whole file
             part.unlink()
             return _download(url, part, desc, progress, timeout)
-        raise DataError(f"{url}: download failed: HTTP {exc.code} {exc.reason}") from None
+        hint = (": the file is not at this address; check the address (a base address can be changed with "
+                "its environment variable, see `bases:` in datasets.yaml)" if exc.code == 404 else "")
+        raise DataError(f"{url}: download failed: HTTP {exc.code} {exc.reason}{hint}") from None
     except (urllib.error.URLError, OSError) as exc:
         reason = getattr(exc, "reason", exc)
-        raise DataError(f"{url}: cannot connect ({reason}); run the fetch again to retry") from None
+        raise DataError(
+            f"{url}: cannot connect ({reason}); check the internet connection and run the fetch again, "
+            "or work offline: pass --mirror DIR or set LOGTRIAL_MIRROR to a folder holding a copy"
+        ) from None
     with resp:
         code = resp.status
         if code == 206:
@@ -229,14 +234,15 @@ def _relative(path: str, field: str, entry: str) -> PurePosixPath:
 
 
 def _origin(entry: Entry, src: Source, mirror: Path | None) -> tuple[str, Path | str]:
-    """Where a source comes from: ('copy', path) or ('url', url)."""
-    folder = mirror_dir(mirror)
-    if src.mirror is not None:
-        cand = folder / _relative(src.mirror, "mirror", entry.name)
-        if cand.is_file():
-            return "copy", cand
-    if (mirror is not None or os.environ.get("LOGTRIAL_MIRROR")) and (folder / src.file).is_file():
-        return "copy", folder / src.file
+    """Where a source comes from: ('copy', path) from a mirror folder that is set and holds it, else ('url', url)."""
+    folder = mirror_folder(mirror)
+    if folder is not None:
+        if src.mirror is not None:
+            cand = folder / _relative(src.mirror, "mirror", entry.name)
+            if cand.is_file():
+                return "copy", cand
+        if (folder / src.file).is_file():
+            return "copy", folder / src.file
     if src.url is not None:
         if src.url.startswith("file://"):
             parsed = urllib.parse.urlparse(src.url)
@@ -247,6 +253,11 @@ def _origin(entry: Entry, src: Source, mirror: Path | None) -> tuple[str, Path |
                 raise DataError(f"dataset '{entry.name}': {src.file}: local source {path} not found")
             return "copy", path
         return "url", src.url
+    if folder is None:
+        raise DataError(
+            f"dataset '{entry.name}': {src.file} has no download address and no mirror folder is set; "
+            f"pass --mirror DIR or set LOGTRIAL_MIRROR to the folder holding {src.mirror or src.file}"
+        )
     looked = folder / (src.mirror or src.file)
     raise DataError(
         f"dataset '{entry.name}': {src.file} not found in the mirror folder {folder} (looked for {looked}); "
@@ -286,7 +297,18 @@ def _verify(entry: Entry, src: Source, path: Path, lock: dict, move_bad: bool) -
     note = ""
     if move_bad:
         note = f"; the file was moved to {_reject(path)}"
-    raise DataError(f"dataset '{entry.name}': {src.file}: {problem}{note}")
+    raise DataError(f"dataset '{entry.name}': {src.file}: {problem}{note}; {_advice(entry, sha_from, size_from)}")
+
+
+def _advice(entry: Entry, sha_from: str, size_from: str) -> str:
+    """What to do about a checksum mismatch, depending on whether the value was pinned or recorded."""
+    if "registry" in (sha_from, size_from):
+        return ("the registry pins the published file, so this copy is not it: if it came from a mirror folder, "
+                "replace that copy with the published file; if it was downloaded, run the fetch again (a damaged "
+                "or changed download); if the publisher changed the file on purpose, check the new file and update "
+                f"size and sha256 of dataset '{entry.name}' in the registry")
+    return (f"the value was recorded by the first fetch (trust on first use); if the new file is expected, "
+            f"remove dataset '{entry.name}' from {LOCK_NAME} in the data folder (LOGTRIAL_HOME) and fetch again")
 
 
 def _obtain(entry: Entry, src: Source, downloads: Path, mirror: Path | None, lock: dict,
@@ -408,6 +430,45 @@ def fetch(entry: Entry, home: Path | None = None, mirror: Path | None = None, pr
     home = Path(home) if home is not None else home_dir()
     with _dataset_guard(home, entry.name):
         return _fetch(entry, home, mirror, progress, size_cap, force, timeout)
+
+
+@dataclass
+class FetchOutcome:
+    """What happened to one dataset of a multi-dataset fetch."""
+
+    name: str
+    state: Literal["fetched", "present", "failed", "skipped"]
+    detail: str
+    exit_code: int = 0
+    first_use: list[str] = field(default_factory=list)  # files whose checksums this fetch recorded, unpinned
+
+
+def fetch_many(entries: list[Entry], home: Path | None = None, mirror: Path | None = None, progress: bool = True,
+               timeout: float = TIMEOUT_S, on_done: Callable[[FetchOutcome], None] | None = None
+               ) -> list[FetchOutcome]:
+    """Fetch several datasets, one after the other; a failure is reported for its dataset and the rest go on."""
+    outcomes: list[FetchOutcome] = []
+    for entry in entries:
+        if not entry.sources:
+            out = FetchOutcome(entry.name, "skipped", "generated on demand, nothing to download")
+        else:
+            try:
+                res = fetch(entry, home=home, mirror=mirror, progress=progress, timeout=timeout)
+            except LogtrialError as exc:
+                out = FetchOutcome(entry.name, "failed", str(exc), exit_code=exc.exit_code)
+            except OSError as exc:
+                out = FetchOutcome(entry.name, "failed", f"{type(exc).__name__}: {exc}", exit_code=1)
+            else:
+                pinned = sum(s.sha256 is not None for s in entry.sources)
+                check = (f"{pinned} of {len(entry.sources)} file(s) match their pinned sha256" if pinned
+                         else "no pinned checksums")
+                first_use = [s.file for s in entry.sources if s.sha256 is None] if res.recorded_hashes else []
+                out = FetchOutcome(entry.name, "present" if res.cached else "fetched",
+                                   f"{res.path} ({check})", first_use=first_use)
+        outcomes.append(out)
+        if on_done is not None:
+            on_done(out)
+    return outcomes
 
 
 @contextlib.contextmanager

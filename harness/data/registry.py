@@ -13,7 +13,6 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 REPO_ROOT = Path(__file__).resolve().parents[2]
 DEFAULT_REGISTRY = REPO_ROOT / "datasets.yaml"
-DEFAULT_MIRROR = Path("../shared/datasets/loghub-2k")
 
 
 class _Strict(BaseModel):
@@ -21,10 +20,11 @@ class _Strict(BaseModel):
 
 
 class Source(_Strict):
-    """One file to acquire: from a URL (https://, file://) or a path inside a mirror folder."""
+    """One file to acquire: from a URL (https://, file://), a base address plus a path, or a mirror folder."""
 
     file: str
     url: str | None = None
+    base: str | None = None
     mirror: str | None = None
     size: int | None = Field(default=None, ge=0)
     sha256: str | None = None
@@ -55,6 +55,8 @@ class Source(_Strict):
     def _one_origin(self) -> "Source":
         if self.url is None and self.mirror is None:
             raise ValueError("needs `url` or `mirror`")
+        if self.base is not None and self.mirror is None:
+            raise ValueError(f"`base: {self.base}` needs `mirror`, the file's path under the base address")
         return self
 
 
@@ -308,8 +310,9 @@ def parse_entry(name: str, raw: Any, origin: str, defaults: dict | None = None) 
 
 def load_registry(paths: list[Path] | None = None) -> dict[str, Entry]:
     """Load the built-in registry plus any user registry files (later files override names)."""
-    files = [Path(os.environ.get("LOGTRIAL_REGISTRY", DEFAULT_REGISTRY))] + [Path(p) for p in paths or []]
+    files = _registry_files(paths)
     entries: dict[str, Entry] = {}
+    bases: dict[str, str] = {}
     for path in files:
         doc = read_yaml(path)
         if not isinstance(doc, dict) or not isinstance(doc.get("datasets"), dict):
@@ -317,11 +320,105 @@ def load_registry(paths: list[Path] | None = None) -> dict[str, Entry]:
         defaults = doc.get("defaults") or {}
         if not isinstance(defaults, dict):
             raise ConfigError(f"{path}: `defaults` must be a mapping")
+        bases.update(_read_bases(doc, path))
         for name, raw in doc["datasets"].items():
             if not re.fullmatch(r"[a-z0-9][a-z0-9._-]*", str(name)):
                 raise ConfigError(f"{path}: dataset name {name!r} must be lower-case letters, digits, '.', '_' or '-'")
-            entries[str(name)] = parse_entry(str(name), raw, str(path), defaults)
+            entries[str(name)] = _resolve_base(parse_entry(str(name), raw, str(path), defaults), bases, path)
     return entries
+
+
+def _registry_files(paths: list[Path] | None) -> list[Path]:
+    return [Path(os.environ.get("LOGTRIAL_REGISTRY", DEFAULT_REGISTRY))] + [Path(p) for p in paths or []]
+
+
+def _read_bases(doc: dict, path: Path) -> dict[str, str]:
+    """A registry file's `bases:` → name → base address (its env variable, when set, overrides the URL)."""
+    raw = doc.get("bases") or {}
+    if not isinstance(raw, dict):
+        raise ConfigError(f"{path}: `bases` must be a mapping of name → {{url, env}}")
+    out: dict[str, str] = {}
+    for name, spec in raw.items():
+        if not isinstance(spec, dict) or not isinstance(spec.get("url"), str) or set(spec) - {"url", "env"}:
+            raise ConfigError(f"{path}: bases.{name}: expected {{url: https://..., env: VARIABLE}} (env optional)")
+        env = spec.get("env")
+        if env is not None and not re.fullmatch(r"[A-Z_][A-Z0-9_]*", str(env)):
+            raise ConfigError(f"{path}: bases.{name}.env: expected an environment variable name, got {env!r}")
+        overridden = bool(env and os.environ.get(env))
+        url = os.environ[env] if overridden else spec["url"]
+        where = f"environment variable {env}" if overridden else f"{path}: bases.{name}.url"
+        if not url.startswith(("https://", "http://", "file://")):
+            raise ConfigError(f"{where}: expected an address starting with https://, http:// or file://, got {url!r}")
+        out[str(name)] = url.rstrip("/")
+    return out
+
+
+def _resolve_base(entry: Entry, bases: dict[str, str], path: Path) -> Entry:
+    """Give each source with a `base` its download URL: base address + '/' + its `mirror` path."""
+    from urllib.parse import quote
+
+    for i, src in enumerate(entry.sources):
+        if src.base is None:
+            continue
+        if src.url is not None:
+            raise ConfigError(f"{path}: dataset '{entry.name}': sources.{i}: give `url` or `base`, not both")
+        if src.base not in bases:
+            known = ", ".join(sorted(bases)) or "none defined"
+            raise ConfigError(f"{path}: dataset '{entry.name}': sources.{i}.base: unknown base {src.base!r} "
+                              f"(known: {known}; define it under top-level `bases:`)")
+        src.url = f"{bases[src.base]}/{quote(str(src.mirror).lstrip('/'))}"
+    return entry
+
+
+def base_addresses(paths: list[Path] | None = None) -> dict[str, str]:
+    """The registry's base addresses after environment overrides: name → URL."""
+    out: dict[str, str] = {}
+    for path in _registry_files(paths):
+        doc = read_yaml(path)
+        if isinstance(doc, dict):
+            out.update(_read_bases(doc, path))
+    return out
+
+
+def load_groups(paths: list[Path] | None = None) -> dict[str, list[str]]:
+    """Named groups of datasets from the registry files' `groups:` (e.g. `samples`): name → dataset names."""
+    entries = load_registry(paths)
+    groups: dict[str, list[str]] = {}
+    for path in _registry_files(paths):
+        doc = read_yaml(path)
+        raw = doc.get("groups") or {} if isinstance(doc, dict) else {}
+        if not isinstance(raw, dict):
+            raise ConfigError(f"{path}: `groups` must be a mapping of group name → list of dataset names")
+        for name, members in raw.items():
+            if not isinstance(members, list) or not members or not all(isinstance(m, str) for m in members):
+                raise ConfigError(f"{path}: groups.{name}: expected a non-empty list of dataset names")
+            if name in entries:
+                raise ConfigError(f"{path}: groups.{name}: the name is already a dataset; pick another group name")
+            unknown = [m for m in members if m not in entries]
+            if unknown:
+                raise ConfigError(f"{path}: groups.{name}: unknown dataset(s) {unknown}")
+            groups[str(name)] = list(dict.fromkeys(members))
+    return groups
+
+
+def select_entries(names: list[str], registry: dict[str, Entry], groups: dict[str, list[str]]) -> list[Entry]:
+    """Dataset entries named by dataset or group names, in order and without repeats."""
+    chosen: dict[str, Entry] = {}
+    for name in names:
+        if name in registry:
+            chosen.setdefault(name, registry[name])
+        elif name in groups:
+            for member in groups[name]:
+                chosen.setdefault(member, registry[member])
+        else:
+            import difflib
+
+            close = difflib.get_close_matches(name, list(registry) + list(groups), n=3)
+            hint = f" Did you mean: {', '.join(close)}?" if close else ""
+            known = ", ".join(sorted(groups)) or "none"
+            raise ConfigError(f"unknown dataset or group '{name}'.{hint} Groups: {known}; "
+                              "run `logtrial datasets` to list the datasets.")
+    return list(chosen.values())
 
 
 def get_entry(name: str, registry: dict[str, Entry]) -> Entry:
@@ -356,18 +453,21 @@ def miner_from_file(path: Path) -> Miner:
         raise ConfigError(f"{path}: miner: {_describe(exc)}") from None
 
 
-def mirror_dir(explicit: str | Path | None = None) -> Path:
-    """The mirror folder: --mirror, else LOGTRIAL_MIRROR, else ../shared/datasets/loghub-2k."""
+def mirror_folder(explicit: str | Path | None = None) -> Path | None:
+    """The mirror folder for offline work: --mirror, else LOGTRIAL_MIRROR, else none (download instead)."""
     if explicit:
         return Path(explicit)
     env = os.environ.get("LOGTRIAL_MIRROR")
-    if env:
-        return Path(env)
-    for base in (Path.cwd(), REPO_ROOT):
-        cand = (base / DEFAULT_MIRROR).resolve()
-        if cand.is_dir():
-            return cand
-    return (REPO_ROOT / DEFAULT_MIRROR).resolve()
+    return Path(env) if env else None
+
+
+def mirror_dir(explicit: str | Path | None = None) -> Path:
+    """The mirror folder that must be set: --mirror or LOGTRIAL_MIRROR (ConfigError when neither is)."""
+    folder = mirror_folder(explicit)
+    if folder is None:
+        raise ConfigError("no mirror folder set: pass --mirror DIR or set LOGTRIAL_MIRROR to a folder laid out "
+                          "like the Loghub repository (e.g. BGL/BGL_2k.log)")
+    return folder
 
 
 def home_dir() -> Path:
