@@ -117,3 +117,17 @@ def test_swept_grid_reuses_fits_and_reports_tolerance(tmp_path: Path, home: Path
     # PCA's threshold ignores labels (alarm budget) and its fit is reused: it tolerates every level.
     assert table.loc[table["detector"] == "pca", "tolerated_censored"].all()
     assert "detectors trained on labels (logistic)" in md
+
+
+def test_readme_sweep_example_loads(tmp_path: Path) -> None:
+    import re
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    block = next(b for b in re.findall(r"```yaml\n(.*?)```", readme, flags=re.S) if "sweep:" in b)
+    (tmp_path / "noise.yaml").write_text(yaml.safe_dump({"noise": {"name": "ours", "drop": {"p": 0.2}}}))
+    exp = load_experiment(_write(tmp_path, {**_doc(), **yaml.safe_load(block)}))
+    names = experiment_order(exp)[1]
+    assert names[0] == "clean" and "late-drop=0.5" in names and "drop=0.5" in names and names[-1] == "ours"
+    axes = {r.noise.get("axis") for r in exp.runs}
+    assert {"drop", "drop:late-drop", "decoys", "delay", "end_jitter", "spurious", "joint"} <= axes
+    assert experiment_order(exp)[1].count("decoys=0.5") == 1 and len(names) == 1 + 3 + 4 + 3 + 2 + 2 + 1 + 2 + 1

@@ -177,8 +177,9 @@ def _parse(data: object, where: str) -> NoiseSpec:
     jitter = None if data.get("end_jitter") is None else _parse_jitter(data["end_jitter"], f"{where}.end_jitter")
     spurious = None if data.get("spurious") is None else _parse_spurious(data["spurious"], f"{where}.spurious")
     axis = data.get("axis")
-    if axis is not None and axis not in SWEEP_KINDS:
-        raise ConfigError(f"{where}.axis: unknown noise kind {axis!r} (allowed: {list(SWEEP_KINDS)})")
+    if axis is not None and (not isinstance(axis, str) or axis.split(":", 1)[0] not in SWEEP_KINDS):
+        raise ConfigError(f"{where}.axis: unknown noise kind {axis!r} (allowed: {list(SWEEP_KINDS)}, "
+                          "optionally followed by ':' and the sweep's prefix)")
     spec = NoiseSpec(
         name="",
         level=None if level is None else float(level),
@@ -385,7 +386,7 @@ def expand_sweep(entry: dict, where: str = "noise") -> list[dict]:
         stages = _joint_stages(entry["at"], level, dist, f"{where}.at") if kind == "joint" else {
             kind: _stage_at(kind, level, dist, where)}
         data = {**deepcopy(base), **stages, "name": f"{prefix}={_level_text(kind, level)}",
-                "level": float(level), "axis": kind}
+                "level": float(level), "axis": kind if prefix == kind else f"{kind}:{prefix}"}
         load_noise(data)  # validate now, so the error names the sweep
         out.append(data)
     return out

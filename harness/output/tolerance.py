@@ -11,8 +11,10 @@ and noise kind it finds
   the detector falls below the best detector that reads no labels at that level.
 
 Intervals come from resampling seeds (with replacement) and, within each run, the
-failures behind its share (binomial, with the same random numbers for every level
-and detector of a seed, so that levels are compared on the same resample).
+failures behind its share (a binomial draw at the run's share and failure count).
+A detector's levels share the random numbers of a resample, as if the same failures
+were redrawn for every level (run records keep counts, not which failure was
+predicted); different detectors are resampled independently.
 """
 
 from __future__ import annotations
@@ -133,14 +135,16 @@ def resample_curves(rows: pd.DataFrame, settings: dict, order: list[str] | None 
     from scipy.stats import binom
 
     clean = rows[rows["axis"] == ""]
-    kinds = [k for k in KIND_ORDER if k in set(rows["axis"])]
+    kinds = sorted(set(rows["axis"]) - {""}, key=lambda a: (KIND_ORDER.index(_kind(a)), a))
     seeds = np.array(sorted(rows["seed"].unique()))
     dets = list(dict.fromkeys([*(order or []), *rows["detector"]]))
     dets = [d for d in dets if d in set(rows["detector"])]
     rng = np.random.default_rng(settings["seed"])
     n_b = settings["resamples"]
     draw = rng.integers(0, len(seeds), size=(n_b, len(seeds)))  # seeds resampled with replacement
-    u = rng.random((n_b, len(seeds)))  # one uniform per resample and seed: common to all levels and detectors
+    # One uniform per resample, seed and detector, common to the levels of a kind: a detector's levels are
+    # compared on the same resample of failures; different detectors are resampled independently.
+    u_of = {d: rng.random((n_b, len(seeds))) for d in dets}
     levels, observed, resampled = {}, {}, {}
     for kind in kinds:
         lv = np.r_[0.0, np.sort(rows.loc[rows["axis"] == kind, "level"].unique())]
@@ -155,7 +159,7 @@ def resample_curves(rows: pd.DataFrame, settings: dict, order: list[str] | None 
             n[li, si] = part["failures"].to_numpy()
             with np.errstate(all="ignore"):
                 observed[(det, kind)] = np.nanmean(p, axis=1) if np.isfinite(p).any() else np.full(len(lv), np.nan)
-                k = binom.ppf(u[:, None, :], n[None], np.nan_to_num(p)[None])  # (B, levels, seeds)
+                k = binom.ppf(u_of[det][:, None, :], n[None], np.nan_to_num(p)[None])  # (B, levels, seeds)
                 share = np.where((n[None] > 0) & np.isfinite(p)[None], k / np.maximum(n[None], 1), np.nan)
                 picked = np.take_along_axis(share, draw[:, None, :].repeat(len(lv), axis=1), axis=2)
                 resampled[(det, kind)] = np.nanmean(picked, axis=2)
@@ -193,23 +197,32 @@ def tolerance_table(curves: Curves, settings: dict) -> pd.DataFrame:
             obs, res = curves.observed[(det, kind)], curves.resampled[(det, kind)]
             tol, cens = _tolerated(obs, lv, settings["drop"])
             tol_b, _ = _tolerated(res, lv, settings["drop"])
+            loss = obs[0] - obs
+            worst = int(np.nanargmax(loss)) if np.isfinite(loss).any() else 0
             row = {"detector": det, "family": curves.families.get(det, "unknown"), "noise": kind,
                    "clean": obs[0], "at_highest": obs[-1], "highest_level": lv[-1],
-                   "tolerated": tol[0], "tolerated_low": np.quantile(tol_b, alpha),
-                   "tolerated_high": np.quantile(tol_b, 1 - alpha), "tolerated_censored": bool(cens[0])}
+                   "worst_loss": loss[worst], "worst_level": lv[worst],
+                   "tolerated": tol[0], "tolerated_low": np.quantile(tol_b, alpha, method="inverted_cdf"),
+                   "tolerated_high": np.quantile(tol_b, 1 - alpha, method="inverted_cdf"), "tolerated_censored": bool(cens[0])}
             if best_obs is not None and row["family"] != "all":
                 cross_b = _crossover(res, best_res, lv)
                 row["crossover"] = _crossover(obs, best_obs, lv)[0]
                 # Resamples that never cross sit above the highest level: count them there for the interval.
                 filled = np.where(np.isnan(cross_b), np.inf, cross_b)
-                row["crossover_low"] = float(np.quantile(filled, alpha))
-                row["crossover_high"] = float(np.quantile(filled, 1 - alpha))
+                row["crossover_low"] = float(np.quantile(filled, alpha, method="inverted_cdf"))
+                row["crossover_high"] = float(np.quantile(filled, 1 - alpha, method="inverted_cdf"))
             out.append(row)
     return pd.DataFrame(out)
 
 
+def _kind(axis: str) -> str:
+    """The noise kind of a sweep axis ('drop', or 'drop:late-drop' for a renamed sweep)."""
+    return axis.split(":", 1)[0]
+
+
 def _lvl(kind: str, v: float) -> str:
     """A level with its unit."""
+    kind = _kind(kind)
     if v is None or (isinstance(v, float) and math.isnan(v)):
         return "never"
     if math.isinf(v):
@@ -219,20 +232,23 @@ def _lvl(kind: str, v: float) -> str:
 
 def table_text(table: pd.DataFrame, metric_title: str) -> pd.DataFrame:
     """The tolerance table as people read it (levels with units, intervals in brackets)."""
+    def at(kind: str, v: float) -> str:
+        return "clean" if v == 0 else _lvl(kind, v)
+
     rows = []
     for r in table.itertuples(index=False):
         k = r.noise
-        tol = _lvl(k, r.tolerated) + ("+" if r.tolerated_censored else "")
+        tol = at(k, r.tolerated) + ("+" if r.tolerated_censored else "")
         row = {"detector": r.detector, "reads labels": "no" if r.family == "all" else "yes", "noise kind": k,
-               f"{metric_title}, clean": f"{r.clean:.2f}", f"at {_lvl(k, r.highest_level)}": f"{r.at_highest:.2f}",
-               "tolerated up to": f"{tol} [{_lvl(k, r.tolerated_low)}, {_lvl(k, r.tolerated_high)}]"}
+               f"{metric_title}, clean": f"{r.clean:.2f}",
+               "at the highest level": f"{r.at_highest:.2f} at {_lvl(k, r.highest_level)}",
+               "tolerated up to": f"{tol} [{at(k, r.tolerated_low)}, {at(k, r.tolerated_high)}]"}
         cross = getattr(r, "crossover", float("nan"))
         if r.family == "all" or pd.isna(getattr(r, "crossover_low", float("nan"))):
             row["falls below best label-free at"] = "–"
         else:
-            row["falls below best label-free at"] = (
-                f"{_lvl(k, cross) if not pd.isna(cross) else 'not within the sweep'} "
-                f"[{_lvl(k, r.crossover_low)}, {_lvl(k, r.crossover_high)}]")
+            point = "not within the sweep" if pd.isna(cross) else ("already clean" if cross == 0 else at(k, cross))
+            row["falls below best label-free at"] = f"{point} [{at(k, r.crossover_low)}, {at(k, r.crossover_high)}]"
         rows.append(row)
     return pd.DataFrame(rows)
 
@@ -274,33 +290,41 @@ def degradation_curves(curves: Curves, settings: dict, metric_title: str):
 
     kinds = list(curves.levels)
     alpha = (1 - settings["ci_level"]) / 2
-    fig, axes = plt.subplots(1, len(kinds), figsize=(4.2 * len(kinds), 3.9), squeeze=False, sharey=True)
-    colours = plt.get_cmap("tab10").colors
-    for ax, k in zip(axes[0], kinds):
+    ncols = min(3, len(kinds))
+    nrows = -(-len(kinds) // ncols)
+    fig, axes = plt.subplots(nrows, ncols, figsize=(4.6 * ncols, 3.7 * nrows), squeeze=False, sharey=True)
+    # The best few over every kind (mean of their curves), with one colour each in every panel.
+    with np.errstate(all="ignore"):
+        score = {d: np.nanmean(np.hstack([curves.observed[(d, k)] for k in kinds])) for d in curves.detectors}
+    best = sorted(curves.detectors, key=lambda d: -np.nan_to_num(score[d], nan=-1))[: settings["highlight"]]
+    colours = dict(zip(best, plt.get_cmap("tab10").colors))
+    free = [d for d in curves.detectors if curves.families.get(d) == "all"]
+    for ax, k in zip(axes.ravel(), kinds):
         lv = curves.levels[k]
-        score = {d: np.nanmean(curves.observed[(d, k)]) for d in curves.detectors}
-        best = sorted(curves.detectors, key=lambda d: -np.nan_to_num(score[d], nan=-1))[: settings["highlight"]]
         for d in curves.detectors:
-            res = curves.resampled[(d, k)]
-            with np.errstate(all="ignore"):
-                lo, hi = np.nanquantile(res, alpha, axis=0), np.nanquantile(res, 1 - alpha, axis=0)
             top = d in best
-            colour = colours[best.index(d) % 10] if top else "0.6"
-            ax.plot(lv, curves.observed[(d, k)], marker="o", ms=3, lw=2 if top else 0.8, color=colour,
-                    label=d if top else None, zorder=3 if top else 1)
+            ax.plot(lv, curves.observed[(d, k)], marker="o", ms=3, lw=2 if top else 0.8,
+                    color=colours.get(d, "0.65"), label=d if top else None, zorder=3 if top else 1)
             if top:
-                ax.fill_between(lv, lo, hi, color=colour, alpha=0.15)
-        free = [d for d in curves.detectors if curves.families.get(d) == "all"]
+                res = curves.resampled[(d, k)]
+                with np.errstate(all="ignore"):
+                    lo, hi = np.nanquantile(res, alpha, axis=0), np.nanquantile(res, 1 - alpha, axis=0)
+                ax.fill_between(lv, lo, hi, color=colours[d], alpha=0.13)
         if free:
             ax.plot(lv, np.nanmax(np.vstack([curves.observed[(d, k)] for d in free]), axis=0), ls="--", color="k",
-                    lw=1, label="best label-free")
+                    lw=1, label="best label-free", zorder=4)
         ax.set_title(k)
         ax.set_xlabel(_unit(k))
         ax.grid(alpha=0.3)
-        ax.legend(fontsize=7)
-    axes[0][0].set_ylabel(metric_title)
-    fig.suptitle(f"{metric_title} against each noise kind (best {settings['highlight']} in colour, "
-                 f"shaded: {settings['ci_level']:.0%} interval over seeds and failures; grey: the rest)")
+    for ax in axes.ravel()[len(kinds):]:
+        ax.set_visible(False)
+    for row in axes:
+        row[0].set_ylabel(metric_title)
+    axes[0][0].legend(fontsize=7)
+    grey = [d for d in curves.detectors if d not in best]
+    fig.suptitle(f"{metric_title} against each noise kind: best {len(best)} in colour with their "
+                 f"{settings['ci_level']:.0%} interval over seeds and failures"
+                 + (f"; grey: {', '.join(grey)}" if grey else ""), fontsize=10)
     fig.tight_layout()
     return fig
 
@@ -308,33 +332,33 @@ def degradation_curves(curves: Curves, settings: dict, metric_title: str):
 def _unit(kind: str) -> str:
     from logtrial.labels.noise import LEVEL_UNITS
 
-    return LEVEL_UNITS.get(kind, "level")
+    return LEVEL_UNITS.get(_kind(kind), "level")
 
 
 def sentences(table: pd.DataFrame, settings: dict, metric_title: str) -> list[str]:
-    """One plain sentence per detector family: which noise kind costs it most, and which barely matter."""
+    """One plain sentence per detector family: which noise kinds cost its worst-hit member more than the tolerance."""
     out = []
     for fam in ("labelled", "healthy", "all", "unknown"):
         t = table[table["family"] == fam]
         if t.empty:
             continue
         names = ", ".join(dict.fromkeys(t["detector"]))
-        loss = (t.assign(loss=t["clean"] - t["at_highest"]).groupby("noise", sort=False)
-                .agg(loss=("loss", "mean"), level=("highest_level", "first"), tol=("tolerated", "min")))
-        loss = loss.sort_values("loss", ascending=False)
         who = FAMILIES.get(fam, "detectors of unknown training")
-        hurt = loss[loss["loss"] > settings["drop"]]
-        calm = loss[loss["loss"] <= settings["drop"]]
+        worst = t.loc[t.groupby("noise", sort=False)["worst_loss"].idxmax().dropna()]
+        worst = worst.sort_values("worst_loss", ascending=False)
+        hurt = worst[worst["worst_loss"] > settings["drop"]]
+        calm = worst[~(worst["worst_loss"] > settings["drop"])]
+        most = max(0.0, float(calm["worst_loss"].max())) if len(calm) else 0.0
         if hurt.empty:
-            text = (f"The {who} ({names}) are not measurably sensitive to any swept noise: they lose at most "
-                    f"{max(0.0, loss['loss'].max()):.2f} of {metric_title} at the highest level of each kind, within "
-                    f"the stated tolerance of {settings['drop']:g}.")
-        else:
-            parts = [f"{k} (−{r.loss:.2f} at {_lvl(k, r.level)}, tolerated up to {_lvl(k, r.tol)})"
-                     for k, r in hurt.iterrows()]
-            text = f"The {who} ({names}) are sensitive to " + "; ".join(parts)
-            text += (f"; {', '.join(calm.index)} cost them at most {max(0.0, calm['loss'].max()):.2f}."
-                     if not calm.empty else ".")
+            out.append(f"The {who} ({names}) are not measurably sensitive to any swept noise: none loses more than "
+                       f"{most:.2f} of {metric_title} at any level, within the stated tolerance of "
+                       f"{settings['drop']:g}.")
+            continue
+        parts = [f"{r.noise} ({r.detector} loses {r.worst_loss:.2f} at {_lvl(r.noise, r.worst_level)}, "
+                 + ("tolerating none of it)" if r.tolerated == 0 else f"tolerating up to {_lvl(r.noise, r.tolerated)})")
+                 for r in hurt.itertuples()]
+        text = f"The {who} ({names}) are sensitive to " + ", ".join(parts)
+        text += f"; {', '.join(calm['noise'])} cost them at most {most:.2f}." if len(calm) else "."
         out.append(text)
     return out
 
