@@ -88,3 +88,27 @@ def test_sentences_name_the_noise_each_family_is_sensitive_to(tmp_path: Path) ->
 def test_bad_tolerance_settings_name_the_field(raw: object, needle: str) -> None:
     with pytest.raises(ConfigError, match=needle):
         tolerance_settings(raw)
+
+
+def test_resampled_shares_have_the_binomial_spread() -> None:
+    # One seed, 50 failures at a share of 0.4: the resampled clean shares have the mean and variance of
+    # Binomial(50, 0.4) / 50 (scipy.stats.binom, reference library).
+    from scipy.stats import binom
+
+    recs = [_record("pca", 0.0, 1, 0.4, failures=50), _record("pca", 0.5, 1, 0.4, failures=50)]
+    settings = tolerance_settings({"resamples": 20000})
+    res = resample_curves(run_rows(recs, settings), settings).resampled[("pca", "drop")][:, 0]
+    assert abs(res.mean() - binom.mean(50, 0.4) / 50) < 0.003
+    assert abs(res.var() - binom.var(50, 0.4) / 2500) < 0.0005
+
+
+def test_bad_tolerance_in_an_experiment_file_exits_2(tmp_path: Path, capsys) -> None:
+    import yaml
+    from logtrial.cli import main
+
+    doc = {"experiment": "t", "datasets": ["radar-relay"], "windows": [{"kind": "time", "size": "1h"}],
+           "task": {"name": "detect"}, "detectors": ["pca"], "noise": [{"sweep": "drop", "values": [0.5]}],
+           "tolerance": {"drop": 2}}
+    (tmp_path / "e.yaml").write_text(yaml.safe_dump(doc))
+    assert main(["run", str(tmp_path / "e.yaml")]) == 2
+    assert "tolerance.drop" in capsys.readouterr().err

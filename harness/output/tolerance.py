@@ -420,6 +420,10 @@ def tolerance_section(records: list[dict], output: Path, tolerance: dict | None 
              f"({rows['seed'].nunique()} seeds, about {int(rows['failures'].median())} failures per run).")
     pngs = {"noise_heatmap.png": _png(heat_map(curves, title)),
             "noise_curves.png": _png(degradation_curves(curves, settings, title))}
+    failed = [r for r in records if r.get("status") == "failed" and r.get("config", {}).get("noise", {}).get("axis")]
+    if failed:
+        intro += (f" {len(failed)} swept run(s) failed and are left out of their level's mean (for instance a "
+                  f"detector trained on labels whose reported labels held no failure); see the run records.")
     md = ["## Label-noise tolerance", "", intro, "", _markdown(text), "", *[f"- {s}" for s in said], ""]
     md += [f"![{n.removesuffix('.png').replace('_', ' ')}]({n})\n" for n in pngs]
     imgs = "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,'
