@@ -112,3 +112,17 @@ def test_bad_tolerance_in_an_experiment_file_exits_2(tmp_path: Path, capsys) -> 
     (tmp_path / "e.yaml").write_text(yaml.safe_dump(doc))
     assert main(["run", str(tmp_path / "e.yaml")]) == 2
     assert "tolerance.drop" in capsys.readouterr().err
+
+
+def test_each_dataset_is_compared_only_within_itself(tmp_path: Path) -> None:
+    recs = []
+    for name, shift in (("fleet-a", 0.0), ("fleet-b", -0.4)):
+        for r in _records():
+            r = {**r, "config": {**r["config"], "dataset": name},
+                 "metrics": {**r["metrics"], "recall_predicted": max(0.0, r["metrics"]["recall_predicted"] + shift)}}
+            recs.append(r)
+    section = tolerance_section(recs, tmp_path, {"resamples": 200})
+    assert set(section.pngs) == {"noise_heatmap_1.png", "noise_curves_1.png", "noise_heatmap_2.png",
+                                 "noise_curves_2.png"}
+    said = noise_sentences(recs, {"resamples": 200})
+    assert any(s.startswith("fleet-a: ") for s in said) and any(s.startswith("fleet-b: ") for s in said)

@@ -113,10 +113,24 @@ def run_rows(records: list[dict], settings: dict) -> pd.DataFrame:
             families[label] = _trains_on(det)
         m = at_budget(r, key)
         value = m.get(settings["metric"])
-        rows.append({"detector": label, "family": families[label], "axis": axis or "", "level":
+        cfg = r["config"]
+        context = " ".join(str(x) for x in (cfg.get("dataset", ""), _flat(cfg.get("windows")), _flat(cfg.get("task")),
+                                             _flat(cfg.get("vocabulary"))) if x)
+        rows.append({"context": context, "detector": label, "family": families[label], "axis": axis or "", "level":
                      0.0 if axis is None else float(noise.get("level") or 0.0), "seed": int(r["config"]["seed"]),
                      "value": np.nan if value is None else float(value), "failures": int(m.get("failures") or 0)})
-    return pd.DataFrame(rows, columns=["detector", "family", "axis", "level", "seed", "value", "failures"])
+    return pd.DataFrame(rows, columns=["context", "detector", "family", "axis", "level", "seed", "value", "failures"])
+
+
+def _flat(d: object) -> str:
+    """A config mapping as 'k=v k=v' (empty for none)."""
+    return " ".join(f"{k}={v}" for k, v in d.items()) if isinstance(d, dict) else ("" if d is None else str(d))
+
+
+def _contexts(rows: pd.DataFrame) -> list[tuple[str, pd.DataFrame]]:
+    """Rows split by dataset, windows, task and vocabulary: each is compared only within itself."""
+    return [(c, g) for c, g in rows.groupby("context", sort=True)
+            if (g["axis"] != "").any() and (g["axis"] == "").any()]
 
 
 @dataclass
@@ -366,11 +380,13 @@ def sentences(table: pd.DataFrame, settings: dict, metric_title: str) -> list[st
 def noise_sentences(records: list[dict], tolerance: dict | None = None, order: list[str] | None = None) -> list[str]:
     """Per detector family, one sentence on which label noise it is sensitive to (empty without sweeps)."""
     settings = tolerance_settings(tolerance)
-    rows = run_rows(records, settings)
-    if rows.empty or not (rows["axis"] != "").any():
-        return []
-    table = tolerance_table(resample_curves(rows, settings, order), settings)
-    return sentences(table, settings, SHARE_METRICS[settings["metric"]])
+    parts = _contexts(run_rows(records, settings))
+    out = []
+    for context, rows in parts:
+        table = tolerance_table(resample_curves(rows, settings, order), settings)
+        said = sentences(table, settings, SHARE_METRICS[settings["metric"]])
+        out += [f"{context}: {x}" for x in said] if len(parts) > 1 else said
+    return out
 
 
 @dataclass
@@ -401,33 +417,42 @@ def tolerance_section(records: list[dict], output: Path, tolerance: dict | None 
                       order: list[str] | None = None) -> Section:
     """The noise-tolerance section of a report (writes tolerance.csv); empty when the experiment has no sweep."""
     settings = tolerance_settings(tolerance)
-    rows = run_rows(records, settings)
-    if rows.empty or not (rows["axis"] != "").any() or not (rows["axis"] == "").any():
+    parts = _contexts(run_rows(records, settings))
+    if not parts:
         return Section()
     title = SHARE_METRICS[settings["metric"]]
-    curves = resample_curves(rows, settings, order)
-    table = tolerance_table(curves, settings)
-    table.to_csv(Path(output) / "tolerance.csv", index=False, float_format="%.6g")
-    text = table_text(table, title)
-    said = sentences(table, settings, title)
     key = budget_key(settings["budget"]) or _first_budget(records)
     where = f"at the budget of {key} alarms per week per 100 entities" if key else "at the experiment's threshold"
     intro = (f"Tolerated level: the highest swept level up to which {title} ({where}) stays within "
              f"{settings['drop']:g} of its clean value at every level (`+`: still within at the highest level). "
              f"Falls below: the lowest level at which a detector that reads labels predicts fewer failures than the "
              f"best detector that reads none. Brackets: {settings['ci_level']:.0%} interval over "
-             f"{settings['resamples']} resamples of seeds and of the failures behind each share "
-             f"({rows['seed'].nunique()} seeds, about {int(rows['failures'].median())} failures per run).")
-    pngs = {"noise_heatmap.png": _png(heat_map(curves, title)),
-            "noise_curves.png": _png(degradation_curves(curves, settings, title))}
+             f"{settings['resamples']} resamples of seeds and of the failures behind each share.")
     failed = [r for r in records if r.get("status") == "failed" and r.get("config", {}).get("noise", {}).get("axis")]
     if failed:
         intro += (f" {len(failed)} swept run(s) failed and are left out of their level's mean (for instance a "
                   f"detector trained on labels whose reported labels held no failure); see the run records.")
-    md = ["## Label-noise tolerance", "", intro, "", _markdown(text), "", *[f"- {s}" for s in said], ""]
-    md += [f"![{n.removesuffix('.png').replace('_', ' ')}]({n})\n" for n in pngs]
-    imgs = "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,'
-                   f'{base64.b64encode(b).decode()}"></figure>' for n, b in pngs.items())
-    page = ("<h2>Label-noise tolerance</h2><p>" + html.escape(intro) + "</p>" + text.to_html(index=False)
-            + "<ul>" + "".join(f"<li>{html.escape(s)}</li>" for s in said) + "</ul>" + imgs)
+    md = ["## Label-noise tolerance", "", intro, ""]
+    page = "<h2>Label-noise tolerance</h2><p>" + html.escape(intro) + "</p>"
+    pngs: dict[str, bytes] = {}
+    tables = []
+    for i, (context, rows) in enumerate(parts):
+        curves = resample_curves(rows, settings, order)
+        table = tolerance_table(curves, settings)
+        tables.append(table.assign(context=context))
+        text = table_text(table, title)
+        said = sentences(table, settings, title)
+        tag = "" if len(parts) == 1 else f"_{i + 1}"
+        names = {f"noise_heatmap{tag}.png": _png(heat_map(curves, title)),
+                 f"noise_curves{tag}.png": _png(degradation_curves(curves, settings, title))}
+        pngs.update(names)
+        size = f"{context}: " if len(parts) > 1 else ""
+        size += f"{rows['seed'].nunique()} seeds, about {int(rows['failures'].median())} failures per run."
+        md += [f"*{size}*", "", _markdown(text), "", *[f"- {x}" for x in said], ""]
+        md += [f"![{n.removesuffix('.png').replace('_', ' ')}]({n})\n" for n in names]
+        page += (f"<p><em>{html.escape(size)}</em></p>" + text.to_html(index=False) + "<ul>"
+                 + "".join(f"<li>{html.escape(x)}</li>" for x in said) + "</ul>"
+                 + "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,'
+                           f'{base64.b64encode(b).decode()}"></figure>' for n, b in names.items()))
+    pd.concat(tables).to_csv(Path(output) / "tolerance.csv", index=False, float_format="%.6g")
     return Section(md, page, pngs)
