@@ -146,3 +146,15 @@ def test_bad_audit_files_name_file_line_and_field(tmp_path: Path, rows: list[str
 def test_missing_audit_file_is_a_configuration_error(tmp_path: Path, capsys) -> None:
     assert main(["fit-noise", str(tmp_path / "nope.csv"), "--out", str(tmp_path / "n.yaml")]) == 2
     assert "audit file not found" in capsys.readouterr().err
+
+
+def test_without_reported_kind_every_ticket_counts_as_a_failure_ticket(tmp_path: Path) -> None:
+    # Replay semantics: a non-failure that was not dropped and filed as a failure is a decoy. An audit of
+    # failure tickets alone therefore fits decoys = 1 and the drop share of non-failures from the audit.
+    table = pd.read_csv(ROOT / "examples" / "audit.csv", dtype=str, keep_default_na=False)
+    tickets = table[(table["reported"] == "no") | (table["reported_kind"] == "failure") | (table["kind"] == "failure")]
+    path = tmp_path / "tickets.csv"
+    tickets.drop(columns=["reported_kind"]).to_csv(path, index=False)
+    fit = fit_audit(read_audit(path))
+    assert fit.noise["decoys"] == 1.0 and "no reported_kind column" in fit.facts["decoys"]["from"]
+    assert fit.noise["drop"]["per_kind"]["other"] == pytest.approx(fit.facts["drop_other"]["share"], abs=1e-6)

@@ -291,7 +291,6 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
     figs["pr_curves.png"] = pr_figure(plotted, store, first_noise, list(summary["detector"].drop_duplicates()))
     pngs = {name: _png(f) for name, f in figs.items()}
     noise_section = tolerance_section(records, out, tolerance, detectors)  # empty unless the noise is swept
-    pngs.update(noise_section.pngs)
     for name, blob in pngs.items():
         (out / name).write_bytes(blob)
     note = ("Each cell: mean over seeds, with the bootstrap interval (averaged over seeds) in brackets. "
@@ -300,11 +299,10 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
     md = [f"# {title}", "", note, "", to_markdown(table), ""]
     if failed:
         md += [f"{len(failed)} run(s) failed:", ""] + [f"- `{r['run_id']}`: {r.get('error', '')}" for r in failed] + [""]
-    md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs if name not in noise_section.pngs]
-    md += noise_section.markdown
+    md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs] + noise_section.markdown
     (out / "report.md").write_text("\n".join(md))
     imgs = "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,{base64.b64encode(b).decode()}">'
-                   f"</figure>" for n, b in pngs.items() if n not in noise_section.pngs) + noise_section.html
+                   f"</figure>" for n, b in pngs.items()) + noise_section.html
     page = (
         "<!doctype html><html><head><meta charset='utf-8'><title>" + html.escape(title) + "</title><style>"
         "body{font-family:sans-serif;margin:2em;color:#222}table{border-collapse:collapse;font-size:13px}"

@@ -415,7 +415,7 @@ def _png(fig) -> bytes:
 
 def tolerance_section(records: list[dict], output: Path, tolerance: dict | None = None,
                       order: list[str] | None = None) -> Section:
-    """The noise-tolerance section of a report (writes tolerance.csv); empty when the experiment has no sweep."""
+    """The noise-tolerance section of a report (writes tolerance.csv and its PNGs); empty without a sweep."""
     settings = tolerance_settings(tolerance)
     parts = _contexts(run_rows(records, settings))
     if not parts:
@@ -455,4 +455,6 @@ def tolerance_section(records: list[dict], output: Path, tolerance: dict | None 
                  + "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,'
                            f'{base64.b64encode(b).decode()}"></figure>' for n, b in names.items()))
     pd.concat(tables).to_csv(Path(output) / "tolerance.csv", index=False, float_format="%.6g")
+    for name, blob in pngs.items():
+        (Path(output) / name).write_bytes(blob)
     return Section(md, page, pngs)
