@@ -174,7 +174,8 @@ def cmd_report(args: argparse.Namespace) -> int:
     from logtrial.running.experiment import experiment_order, load_experiment
 
     exp = load_experiment(Path(args.experiment), output=args.out)
-    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs})
+    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs},
+                         tolerance=exp.raw.get("tolerance"))
     print(to_text(compact(paths["table"])))
     print(f"\nreport: {paths['markdown']}\n        {paths['html']}\n        {paths['csv']}")
     print(f"tracking: mlflow ui --backend-store-uri sqlite:///{(exp.output / 'mlflow.db').resolve()}")
@@ -227,6 +228,26 @@ def cmd_gate(args: argparse.Namespace) -> int:
     worst = ", ".join(f"{r.detector}/{r.noise} {r.metric} {r.note}" for r in bad.head(5).itertuples())
     print(f"\nFAIL: {len(bad)} of {n} figures regressed: {worst}")
     return 1
+
+
+def cmd_fit_noise(args: argparse.Namespace) -> int:
+    """Fit label noise to an audit of incidents and write it as a noise entry."""
+    from logtrial.labels.audit import delay_figure, fit_audit, read_audit, summary_lines, write_noise_file
+
+    fit = fit_audit(read_audit(Path(args.audit)), level=args.level, precision=args.precision, delay=args.delay,
+                    name=args.name)
+    out = write_noise_file(fit, Path(args.out))
+    print("\n".join(summary_lines(fit)))
+    if len(fit.delays_h):
+        import matplotlib.pyplot as plt
+
+        fig_path = Path(args.figure) if args.figure else out.with_suffix(".delay.png")
+        fig = delay_figure(fit)
+        fig.savefig(fig_path, dpi=110)
+        plt.close(fig)
+        print(f"delay fit figure: {fig_path}")
+    print(f"noise entry: {out}  (in an experiment: noise: [{{name: clean}}, {{file: {out}}}])")
+    return 0
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -314,6 +335,19 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--tolerance", type=float, help="absolute tolerance (default: the file's gate.tolerance or 0.02)")
     sp.add_argument("--all", action="store_true", help="show every compared figure, not only those that moved")
     sp.add_argument("--quiet", action="store_true", help="no per-run progress")
+
+    sp = verb("fit-noise", cmd_fit_noise, "fit ticket noise to an audit of incidents; write a noise entry (YAML)",
+              "logtrial fit-noise examples/audit.csv --out noise.yaml")
+    sp.add_argument("audit", metavar="AUDIT.csv", help="id, kind, true_start, true_end, reported, reported_start, "
+                    "reported_end [, reported_kind, entity]")
+    sp.add_argument("--out", required=True, metavar="YAML", help="where to write the noise entry")
+    sp.add_argument("--precision", type=float, default=0.1,
+                    help="largest half-width accepted for the drop-share interval (default: %(default)s)")
+    sp.add_argument("--level", type=float, default=0.95, help="interval confidence level (default: %(default)s)")
+    sp.add_argument("--delay", choices=["auto", "exponential", "empirical"], default="auto",
+                    help="delay model; auto: exponential unless a KS test rejects it at 5%% (default: %(default)s)")
+    sp.add_argument("--name", help="name of the noise setting (default: fitted-<file stem>)")
+    sp.add_argument("--figure", metavar="PNG", help="delay goodness-of-fit figure (default: beside --out)")
 
     from logtrial.demo import add_demo_parser
 

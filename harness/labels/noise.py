@@ -18,6 +18,9 @@ order: ``drop`` → ``decoys`` → ``delay`` → ``end_jitter`` → ``spurious``
   expected tickets over the given span, uniform over the given entities and time,
   each lasting ``duration`` (default 1h), kind failure.
 
+A spec may also carry ``axis``: the noise kind it varies when it was produced by a
+sweep (see :func:`expand_sweep`), so that reports can group settings by kind.
+
 Every stage draws from its own stream derived from the seed, and draws are made
 for every true incident before any is dropped, so a stage's outcome for an
 incident does not depend on other stages' settings: with the same seed, a larger
@@ -42,6 +45,12 @@ from logtrial.windowing.windows import parse_duration
 DELAY_DISTS = ("fixed", "uniform", "exponential", "empirical")
 JITTER_DISTS = ("normal", "uniform")
 _STAGES = ("drop", "decoys", "delay", "end_jitter", "spurious")
+# Noise kinds a sweep can vary on their own, and "joint" (all of them scaled together).
+SWEEP_KINDS = (*_STAGES, "joint")
+# The unit of each kind's level, as reports print it.
+LEVEL_UNITS = {"drop": "share unreported", "decoys": "share of non-failures filed as failures",
+               "delay": "mean delay (hours)", "end_jitter": "end error scale (hours)",
+               "spurious": "spurious tickets per day", "joint": "fraction of the joint setting"}
 
 
 @dataclass(frozen=True)
@@ -93,6 +102,7 @@ class NoiseSpec:
     delay: DelaySpec | None = None
     end_jitter: JitterSpec | None = None
     spurious: SpuriousSpec | None = None
+    axis: str | None = None
     raw: dict = field(default_factory=dict, compare=False)
 
     def is_clean(self) -> bool:
@@ -133,7 +143,8 @@ def load_noise(source: dict | str | Path | NoiseSpec | None) -> NoiseSpec:
             raise ConfigError(f"{path}: cannot read noise spec: {exc}") from exc
         except yaml.YAMLError as exc:
             raise ConfigError(f"{path}: invalid YAML: {exc}") from exc
-        if isinstance(data, dict) and set(data) == {"noise"}:
+        # A file written by `logtrial fit-noise` holds the entry under `noise` and the fit's facts under `fit`.
+        if isinstance(data, dict) and "noise" in data and set(data) <= {"noise", "fit"}:
             data = data["noise"]
         try:
             return _parse(data or {}, where)
@@ -146,7 +157,7 @@ def _parse(data: object, where: str) -> NoiseSpec:
     """Validate a noise mapping."""
     if not isinstance(data, dict):
         raise ConfigError(f"{where}: expected a mapping, got {type(data).__name__}")
-    allowed = {"name", "level", *_STAGES}
+    allowed = {"name", "level", "axis", *_STAGES}
     unknown = sorted(set(data) - allowed)
     if unknown:
         raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: {sorted(allowed)})")
@@ -165,6 +176,10 @@ def _parse(data: object, where: str) -> NoiseSpec:
     delay = None if data.get("delay") is None else _parse_delay(data["delay"], f"{where}.delay")
     jitter = None if data.get("end_jitter") is None else _parse_jitter(data["end_jitter"], f"{where}.end_jitter")
     spurious = None if data.get("spurious") is None else _parse_spurious(data["spurious"], f"{where}.spurious")
+    axis = data.get("axis")
+    if axis is not None and (not isinstance(axis, str) or axis.split(":", 1)[0] not in SWEEP_KINDS):
+        raise ConfigError(f"{where}.axis: unknown noise kind {axis!r} (allowed: {list(SWEEP_KINDS)}, "
+                          "optionally followed by ':' and the sweep's prefix)")
     spec = NoiseSpec(
         name="",
         level=None if level is None else float(level),
@@ -173,6 +188,7 @@ def _parse(data: object, where: str) -> NoiseSpec:
         delay=delay,
         end_jitter=jitter,
         spurious=spurious,
+        axis=axis,
         raw=deepcopy(data),
     )
     name = data.get("name")
@@ -320,6 +336,142 @@ def noise_levels(base: dict, field: str, values: Sequence[object]) -> list[Noise
             data["level"] = float(value)
         specs.append(load_noise(data))
     return specs
+
+
+_SWEEP_FIELDS = {"sweep", "values", "range", "dist", "base", "at", "prefix"}
+_DURATION_KINDS = ("delay", "end_jitter")
+
+
+def expand_sweep(entry: dict, where: str = "noise") -> list[dict]:
+    """The named noise mappings of one ``{sweep: KIND, values: [...] | range: [start, stop, step]}`` entry.
+
+    Each level becomes one mapping with ``name`` (e.g. ``drop=0.3``), ``level`` (the
+    swept number: a share, hours for delay and end jitter, tickets per day for
+    spurious, a fraction for joint) and ``axis`` (the kind). ``base`` holds other
+    noise stages fixed under every level; ``dist`` picks the delay (fixed, uniform,
+    exponential; level = mean) or end-jitter (normal, uniform) distribution; a
+    ``joint`` sweep scales every stage of ``at`` (the noise at level 1) by the level.
+    """
+    if not isinstance(entry, dict) or "sweep" not in entry:
+        raise ConfigError(f"{where}: expected a mapping with `sweep: KIND`")
+    _only(entry, _SWEEP_FIELDS, where)
+    kind = entry["sweep"]
+    if kind not in SWEEP_KINDS:
+        raise ConfigError(f"{where}.sweep: unknown noise kind {kind!r} (allowed: {list(SWEEP_KINDS)})")
+    if ("values" in entry) == ("range" in entry):
+        raise ConfigError(f"{where}: give exactly one of `values: [...]` or `range: [start, stop, step]`")
+    levels = _sweep_levels(entry, kind, where)
+    base = entry.get("base") or {}
+    if not isinstance(base, dict):
+        raise ConfigError(f"{where}.base: expected a noise mapping, got {type(base).__name__}")
+    _only(base, set(_STAGES), f"{where}.base")
+    if kind in base:
+        raise ConfigError(f"{where}.base.{kind}: the swept kind cannot also be held fixed in base")
+    if kind == "joint":
+        at = entry.get("at")
+        if not isinstance(at, dict) or not at:
+            raise ConfigError(f"{where}.at: a joint sweep needs the noise at level 1, e.g. "
+                              "{drop: 0.5, decoys: 0.3, delay: 1d, end_jitter: 6h}")
+        _only(at, set(_STAGES), f"{where}.at")
+    elif "at" in entry:
+        raise ConfigError(f"{where}.at: only a joint sweep takes `at`")
+    dist = entry.get("dist")
+    if dist is not None and kind not in (*_DURATION_KINDS, "joint"):
+        raise ConfigError(f"{where}.dist: only delay, end_jitter and joint sweeps take a distribution")
+    prefix = entry.get("prefix", kind)
+    if not isinstance(prefix, str) or not prefix:
+        raise ConfigError(f"{where}.prefix: expected a non-empty string, got {prefix!r}")
+    out = []
+    for level in levels:
+        stages = _joint_stages(entry["at"], level, dist, f"{where}.at") if kind == "joint" else {
+            kind: _stage_at(kind, level, dist, where)}
+        data = {**deepcopy(base), **stages, "name": f"{prefix}={_level_text(kind, level)}",
+                "level": float(level), "axis": kind if prefix == kind else f"{kind}:{prefix}"}
+        load_noise(data)  # validate now, so the error names the sweep
+        out.append(data)
+    return out
+
+
+def _sweep_levels(entry: dict, kind: str, where: str) -> list[float]:
+    """The swept levels as numbers (hours for durations), ascending and distinct."""
+    def number(v: object, at: str) -> float:
+        if kind in _DURATION_KINDS:
+            return _nonneg_duration(v, at) / pd.Timedelta(hours=1)
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or v < 0:
+            raise ConfigError(f"{at}: expected a non-negative number, got {v!r}")
+        if kind in ("drop", "decoys", "joint") and v > 1:
+            raise ConfigError(f"{at}: a {kind} level is a share between 0 and 1, got {v}")
+        return float(v)
+
+    if "values" in entry:
+        raw = entry["values"]
+        if not isinstance(raw, list) or not raw:
+            raise ConfigError(f"{where}.values: expected a non-empty list of levels")
+        levels = [number(v, f"{where}.values[{i}]") for i, v in enumerate(raw)]
+    else:
+        raw = entry["range"]
+        if not isinstance(raw, list) or len(raw) != 3:
+            raise ConfigError(f"{where}.range: expected [start, stop, step], got {raw!r}")
+        start, stop, step = (number(v, f"{where}.range[{i}]") for i, v in enumerate(raw))
+        if step <= 0 or stop < start:
+            raise ConfigError(f"{where}.range: expected start <= stop and a positive step, got {raw!r}")
+        count = int(np.floor((stop - start) / step + 1e-9)) + 1
+        if count > 100:
+            raise ConfigError(f"{where}.range: {count} levels; at most 100 per sweep")
+        levels = [round(start + i * step, 10) for i in range(count)]
+    if len(set(levels)) != len(levels):
+        raise ConfigError(f"{where}: levels repeat: {levels}")
+    return sorted(levels)
+
+
+def _level_text(kind: str, level: float) -> str:
+    """A level as it appears in a setting's name."""
+    return f"{level:g}h" if kind in _DURATION_KINDS else f"{level:g}"
+
+
+def _hours(h: float) -> str:
+    """Hours as a duration string the noise parser reads."""
+    return f"{round(h * 3600)}s"
+
+
+def _stage_at(kind: str, level: float, dist: str | None, where: str) -> object:
+    """One stage's mapping at a level (level = share, hours or tickets per day)."""
+    if kind == "drop":
+        return {"p": level}
+    if kind == "decoys":
+        return level
+    if kind == "spurious":
+        return {"per_day": level}
+    if kind == "end_jitter":
+        dist = dist or "normal"
+        if dist not in JITTER_DISTS:
+            raise ConfigError(f"{where}.dist: unknown end-jitter distribution {dist!r} (allowed: {list(JITTER_DISTS)})")
+        return {"dist": dist, "scale": _hours(level)}
+    dist = dist or "exponential"
+    if dist == "fixed":
+        return {"dist": "fixed", "value": _hours(level)}
+    if dist == "uniform":
+        return {"dist": "uniform", "low": "0s", "high": _hours(2 * level)}
+    if dist == "exponential":
+        return {"dist": "exponential", "mean": _hours(level), "max": None}
+    raise ConfigError(f"{where}.dist: a delay sweep's level is its mean: use fixed, uniform or exponential, got {dist!r}")
+
+
+def _joint_stages(at: dict, level: float, dist: str | None, where: str) -> dict:
+    """Every stage of ``at`` scaled by ``level`` (durations by their mean, shares and rates linearly)."""
+    out = {}
+    for stage, value in at.items():
+        if stage in _DURATION_KINDS:
+            hours = _nonneg_duration(value, f"{where}.{stage}") / pd.Timedelta(hours=1)
+            d = dist if (dist in JITTER_DISTS if stage == "end_jitter" else dist in DELAY_DISTS) else None
+            out[stage] = _stage_at(stage, level * hours, d, f"{where}.{stage}")
+        else:
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or value < 0:
+                raise ConfigError(f"{where}.{stage}: expected a number (the level-1 value), got {value!r}")
+            if stage != "spurious" and value > 1:
+                raise ConfigError(f"{where}.{stage}: must be between 0 and 1, got {value}")
+            out[stage] = _stage_at(stage, level * float(value), None, where)
+    return out
 
 
 def _draw_delay(d: DelaySpec, rng: np.random.Generator, n: int) -> np.ndarray:

@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from logtrial.errors import DataError
+from logtrial.output.tolerance import tolerance_section
 from logtrial.running.experiment import vocabulary_label
 
 # Headline figures: (record key, column title).
@@ -260,7 +261,8 @@ def order_like(summary: pd.DataFrame, detectors: list[str], noises: list[str]) -
 
 
 def write_report(output: Path, title: str, detectors: list[str] | None = None,
-                 noises: list[str] | None = None, run_ids: set[str] | None = None) -> dict:
+                 noises: list[str] | None = None, run_ids: set[str] | None = None,
+                 tolerance: dict | None = None) -> dict:
     """Write report.md, results.csv, summary.csv, report.html and PNG plots into ``output``; return paths.
 
     With ``run_ids`` only those runs are reported (records of other configurations left in
@@ -288,6 +290,7 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
         figs["lead_times.png"] = lead_time_figure(plotted, first_noise, list(summary["detector"].drop_duplicates()))
     figs["pr_curves.png"] = pr_figure(plotted, store, first_noise, list(summary["detector"].drop_duplicates()))
     pngs = {name: _png(f) for name, f in figs.items()}
+    noise_section = tolerance_section(records, out, tolerance, detectors)  # empty unless the noise is swept
     for name, blob in pngs.items():
         (out / name).write_bytes(blob)
     note = ("Each cell: mean over seeds, with the bootstrap interval (averaged over seeds) in brackets. "
@@ -296,10 +299,10 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
     md = [f"# {title}", "", note, "", to_markdown(table), ""]
     if failed:
         md += [f"{len(failed)} run(s) failed:", ""] + [f"- `{r['run_id']}`: {r.get('error', '')}" for r in failed] + [""]
-    md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs]
+    md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs] + noise_section.markdown
     (out / "report.md").write_text("\n".join(md))
     imgs = "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,{base64.b64encode(b).decode()}">'
-                   f"</figure>" for n, b in pngs.items())
+                   f"</figure>" for n, b in pngs.items()) + noise_section.html
     page = (
         "<!doctype html><html><head><meta charset='utf-8'><title>" + html.escape(title) + "</title><style>"
         "body{font-family:sans-serif;margin:2em;color:#222}table{border-collapse:collapse;font-size:13px}"

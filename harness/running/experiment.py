@@ -16,7 +16,7 @@ from logtrial.errors import ConfigError, LogtrialError
 
 TOP_LEVEL = {
     "experiment", "description", "output", "datasets", "windows", "tasks", "task", "split", "noise", "detectors",
-    "seeds", "threshold", "scoring", "registry", "gate", "vocabulary", "vocabularies",
+    "seeds", "threshold", "scoring", "registry", "gate", "vocabulary", "vocabularies", "tolerance",
 }
 SCORING_DEFAULTS = {"cooldown": "1h", "bootstrap": 200, "ci_level": 0.95, "bootstrap_unit": "entity"}
 
@@ -199,6 +199,34 @@ def _canonical_noise(raw: Any, where: str) -> dict:
     return {**raw, "name": spec.name, **({"level": spec.level} if spec.level is not None else {})}
 
 
+def _noise_settings(entries: list, base: Path) -> list[dict]:
+    """Canonical noise settings: plain entries, `file:` entries (e.g. from fit-noise) and expanded sweeps.
+
+    A sweep's level-0 setting is the clean one, shared by every sweep (added when absent).
+    """
+    from logtrial.labels.noise import expand_sweep, load_noise
+
+    out, swept = [], False
+    for i, raw in enumerate(entries):
+        where = f"noise[{i}]"
+        if isinstance(raw, dict) and "sweep" in raw:
+            swept = True
+            out += [n for n in (_canonical_noise(m, where) for m in expand_sweep(raw, where))
+                    if not load_noise(n).is_clean()]
+        elif isinstance(raw, dict) and "file" in raw:
+            unknown = sorted(set(raw) - {"file", "name", "level"})
+            if unknown:
+                raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: file, name, level)")
+            spec = load_noise(base / str(raw["file"]))
+            overrides = {k: raw[k] for k in ("name", "level") if k in raw}
+            out.append(_canonical_noise({**spec.raw, "name": spec.name, **overrides}, where))
+        else:
+            out.append(_canonical_noise(raw, where))
+    if swept and not any(load_noise(n).is_clean() for n in out):
+        out.insert(0, {"name": "clean", "level": 0.0})
+    return out
+
+
 def _canonical_detector(raw: Any, where: str) -> dict:
     from logtrial.detectors.registry import create
 
@@ -270,7 +298,7 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
             if "horizon" in t and "size" in w and pd.Timedelta(t["horizon"]) < pd.Timedelta(w["size"]):
                 raise ConfigError(f"task.horizon must be at least the window size ({w['size']}), got {t['horizon']}")
     split = _canonical_split(doc.get("split"), "split")
-    noises = [_canonical_noise(n, f"noise[{i}]") for i, n in enumerate(_as_list(doc.get("noise") or [None]))]
+    noises = _noise_settings(_as_list(doc.get("noise") or [None]), base)
     names = [n["name"] for n in noises]
     if len(set(names)) != len(names):
         raise ConfigError(f"noise: level names must be unique, got {names}")
@@ -290,6 +318,9 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
     from logtrial.output.gate import gate_settings
 
     gate_settings(doc.get("gate"))
+    from logtrial.output.tolerance import tolerance_settings
+
+    tolerance_settings(doc.get("tolerance"))
     if "vocabulary" in doc and "vocabularies" in doc:
         raise ConfigError("give `vocabulary` or `vocabularies`, not both")
     vocabs = [_canonical_vocabulary(v, f"vocabularies[{i}]") for i, v in
