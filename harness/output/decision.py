@@ -157,15 +157,15 @@ def decision_boards(records: list[dict], detectors: list[str], noises: list[str]
     return boards
 
 
-def _policy_name(records: list[dict]) -> str:
+def _policy_name(records: list[dict], short: bool = False) -> str:
     fin = [r for r in records if r.get("status") == "finished"]
     kind = fin[0]["threshold"]["policy"]["kind"] if fin else "threshold"
-    return f"{kind} (each detector its own threshold; alarm rates differ)"
+    return f"{kind} (own thresholds)" if short else f"{kind} (each detector its own threshold; alarm rates differ)"
 
 
-def point_title(board: Board, records: list[dict]) -> str:
+def point_title(board: Board, records: list[dict], short: bool = False) -> str:
     """Heading of a board's operating point."""
-    return budget_label(board.point) if board.point != "policy" else _policy_name(records)
+    return budget_label(board.point) if board.point != "policy" else _policy_name(records, short)
 
 
 def _fmt_share(row: pd.Series) -> str:

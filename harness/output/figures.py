@@ -35,14 +35,18 @@ def read_curve(store, run_id: str) -> pd.DataFrame | None:
     if "curve_caught" not in s.columns:
         return None
     c = s[s["part"] == "curve"]
-    return c.sort_values("curve_alarms_per_week_per_100") if len(c) else None
+    # Highest threshold first: alarms (mostly) rise along the line; merging makes a few steps back.
+    return c.sort_values("score", ascending=False) if len(c) else None
 
 
 def colours_for(boards: list[Board], detectors: list[str]) -> dict[str, str]:
     """One Okabe–Ito colour per detector that is ever among the best few; grey for the rest."""
     top = []
+    first_point = boards[0].point if boards else None
     for b in boards:
-        for d in b.rows["detector"].head(2):
+        if b.point != first_point:
+            continue
+        for d in b.rows["detector"].head(HIGHLIGHT):
             if d not in top:
                 top.append(d)
     top = top[:len(OKABE_ITO)]
@@ -76,8 +80,7 @@ def operating_curve_figure(records: list[dict], store, boards: list[Board], sett
             colour = colours.get(det, GREY) if top else GREY
             x = c["curve_alarms_per_week_per_100"].clip(lower=0.1)
             n = int(c["curve_failures"].iloc[0])
-            kw = dict(color=colour, lw=2.0 if top else 0.8, alpha=1.0 if top else 0.6, zorder=3 if top else 1,
-                      drawstyle="steps-post")
+            kw = dict(color=colour, lw=1.8 if top else 0.8, alpha=1.0 if top else 0.6, zorder=3 if top else 1)
             ax.plot(x, c["curve_caught"] / max(n, 1), label=det if top else None, **kw)
             if predict:
                 ax2.plot(x, c["curve_lead_median_h"], **kw)
@@ -86,11 +89,12 @@ def operating_curve_figure(records: list[dict], store, boards: list[Board], sett
         for b in budgets:
             for a in (ax, ax2):
                 a.axvline(b, color="#444444", ls=":", lw=1)
-            ax.text(b, 1.02, f"{b:g}", ha="center", va="bottom", fontsize=8, transform=ax.get_xaxis_transform())
+            ax.text(b, 0.5, f" budget {b:g}", ha="left", va="center", rotation=90, fontsize=7, color="#444444",
+                    transform=ax.get_xaxis_transform())
         ax.set_xscale("log")
         ax2.set_xscale("log")
         ax.set_ylim(-0.02, 1.05)
-        ax.set_title(f"{noise} labels (n = {n} test failures)", pad=14)
+        ax.set_title(f"{noise} labels (n = {n} test failures)")
         ax.set_ylabel("share of failures " + ("predicted" if predict else "caught"))
         ax2.set_xlabel("alarms per week per 100 entities (test, log scale)")
         ax.set_xlabel("alarms per week per 100 entities (test, log scale)")

@@ -262,7 +262,7 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
         setting = settings[0]  # pictures show the first setting (dataset, vocabulary, windows, task)
         in_setting = [r for r in finished if _setting_of(r) == setting]
         figs["operating_curves.png"] = operating_curve_figure(in_setting, store, boards, setting, budgets, colours)
-        figs["budget_dots.png"] = budget_dots_figure(boards, setting, lambda b: point_title(b, finished), colours)
+        figs["budget_dots.png"] = budget_dots_figure(boards, setting, lambda b: point_title(b, finished, short=True), colours)
         first = next(b for b in boards if b.setting == setting)
         if first.task == "predict":
             figs["lead_times.png"] = lead_time_figure(in_setting, first_noise, det_order, first.horizon_h, first.point)
@@ -320,7 +320,7 @@ def _md_to_html(lines: list[str]) -> str:
             parts.append("<ul>" + "".join(f"<li>{html.escape(b)}</li>" for b in bullets) + "</ul>")
             bullets.clear()
 
-    for line in lines:
+    for line in (part for block in lines for part in block.split("\n")):
         if line.startswith("|"):
             table.append(line)
             continue
