@@ -4,7 +4,8 @@ For reading only: the headline figures use thresholds chosen on validation. A cu
 shows what every other threshold would have given on the test split, under exactly
 the rules of :mod:`logtrial.evaluation.alarms` (alerts merged per entity with the
 cool-down; a failure is *predicted* when an alarm is active within its horizon, or,
-for the detect task (no horizon), *detected* when an alarm's windows meet it).
+for the detect task (no horizon), *caught* when an alarm is running as it starts or an
+alarm's windows meet it).
 
 The alarm count is computed for every distinct test score at once
 (:func:`~logtrial.evaluation.alarms.alarm_counts`); the failures caught are then
@@ -118,22 +119,23 @@ def operating_curve(
             j = np.searchsorted(a_key, probe_key, side="left")
             jj = np.minimum(j, n_alarms - 1)
             same = (j < n_alarms) & (a_code[jj] == f_code) & (f_code >= 0) & ~fleet
-            if h > 0:
-                caught = same & (a_first[jj] < f_s)
-                lead = np.where(caught, f_s - np.maximum(a_first[jj], f_s - h), np.nan) / 3.6e12
-            else:
+            # Predicted: the first alarm still active at s - h began before s (with no horizon this
+            # is an alarm already running when the failure starts, as in incident_metrics).
+            pred = same & (a_first[jj] < f_s)
+            lead = np.where(pred, f_s - np.maximum(a_first[jj], f_s - h), np.nan) / 3.6e12
+            caught = pred
+            if h == 0:
                 ok1 = same & (a_w[jj] <= f_e) & ((a_last[jj] > f_s) | ((a_last[jj] == f_s) & (a_w[jj] == a_last[jj])))
                 j2 = np.minimum(j + 1, n_alarms - 1)
                 ok2 = (same & (a_last[jj] == f_s) & (j + 1 < n_alarms) & (a_code[j2] == f_code)
                        & (a_w[j2] <= f_e) & (a_last[j2] > f_s))
-                caught = ok1 | ok2
+                caught = pred | ok1 | ok2
             for i in np.flatnonzero(fleet):  # fleet-wide failures: any entity's alarm counts
-                if h > 0:
-                    act = (a_first < f_s[i]) & (a_last >= f_s[i] - h)
-                    if act.any():
-                        caught[i] = True
-                        lead[i] = (f_s[i] - np.maximum(a_first[act], f_s[i] - h).min()) / 3.6e12
-                else:
+                act = (a_first < f_s[i]) & (a_last >= f_s[i] - h)
+                if act.any():
+                    caught[i] = True
+                    lead[i] = (f_s[i] - np.maximum(a_first[act], f_s[i] - h).min()) / 3.6e12
+                elif h == 0:
                     caught[i] = bool(((a_w <= f_e[i]) & ((a_last > f_s[i]) | ((a_last == f_s[i]) & (a_w == a_last)))).any())
         k = int(caught.sum())
         rows.append((float(t), n_alarms, n_alarms / weeks / (n_ent / 100.0) if weeks > 0 else np.nan, k,
