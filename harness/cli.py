@@ -156,7 +156,8 @@ def cmd_report(args: argparse.Namespace) -> int:
     from logtrial.running.experiment import experiment_order, load_experiment
 
     exp = load_experiment(Path(args.experiment), output=args.out)
-    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs})
+    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs},
+                         description=exp.raw.get("description"))
     print(paths["decision"] + "\n\nAll figures at the threshold policy:")
     print(to_text(compact(paths["table"])))
     print(f"\nreport: {paths['markdown']}\n        {paths['html']}\n        {paths['csv']}")

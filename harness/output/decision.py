@@ -131,8 +131,9 @@ def _board(setting: str, noise: str, point: str, recs: list[dict], order: list[s
     n = int(frame["n"].max())
     warnings = []
     if n < FEW_FAILURES:
-        warnings.append(f"only {n} test failures: this comparison rests on fewer than {FEW_FAILURES} failures; "
-                        f"differences below {min_detectable_difference(n):.0%} of failures cannot be told apart")
+        warnings.append(f"only {n} test failures: this comparison rests on fewer than {FEW_FAILURES} failures, so it "
+                        f"is a mechanics check, not a ranking; differences below "
+                        f"{min_detectable_difference(n):.0%} of failures cannot be told apart")
     hours = pd.Timedelta(horizon).total_seconds() / 3600 if horizon else None
     return Board(setting, noise, point, task, hours, frame.reset_index(drop=True), n, warnings)
 

@@ -224,12 +224,14 @@ def decision_text(boards: list[Board], records: list[dict]) -> str:
 
 
 def write_report(output: Path, title: str, detectors: list[str] | None = None,
-                 noises: list[str] | None = None, run_ids: set[str] | None = None) -> dict:
+                 noises: list[str] | None = None, run_ids: set[str] | None = None,
+                 description: str | None = None) -> dict:
     """Write report.md, results.csv, summary.csv, report.html and PNG plots into ``output``; return paths.
 
     With ``run_ids`` only those runs are reported (records of other configurations left in
     the same folder, e.g. from an earlier version of the experiment, are ignored). The
-    decision section comes first; ``decision`` in the result is its terminal form.
+    decision section comes first (after the experiment's ``description``); ``decision`` in the
+    result is its terminal form.
     """
     from logtrial.output.figures import (
         budget_dots_figure,
@@ -281,7 +283,8 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
     decision_md = decision_markdown(boards, finished)
     curves_note = ("Operating curves are computed on the test split over every distinct threshold (a few hundred "
                    "shown): they are for reading; the headline points use thresholds chosen on validation.")
-    md = [f"# {title}", ""] + decision_md + ["## All figures at the threshold policy", "", note, "",
+    intro = [" ".join(str(description).split()), ""] if description else []
+    md = [f"# {title}", ""] + intro + decision_md + ["## All figures at the threshold policy", "", note, "",
                                              to_markdown(table), ""]
     if foot:
         md += [foot, ""]
@@ -290,7 +293,7 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
     md += ["## Pictures", "", curves_note, ""]
     md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs]
     (out / "report.md").write_text("\n".join(md))
-    (out / "report.html").write_text(_html(title, decision_md, note, foot, table, curves_note, pngs, failed))
+    (out / "report.html").write_text(_html(title, intro + decision_md, note, foot, table, curves_note, pngs, failed))
     return {"markdown": out / "report.md", "html": out / "report.html", "csv": out / "results.csv",
             "table": table, "failed": len(failed), "decision": decision_text(boards, finished),
             "boards": boards, "pictures": list(pngs)}
