@@ -102,3 +102,24 @@ def test_pick_points_keeps_ends_and_limit() -> None:
     assert idx[0] == 0 and idx[-1] == len(counts) - 1
     assert len(idx) <= 302 and np.all(np.diff(idx) > 0)
     assert np.array_equal(pick_points(np.array([3, 2, 0]), 300), np.arange(3))
+
+
+def test_unbounded_ratio_interval_gets_a_note_not_infinity() -> None:
+    # A predicts its failure; B and C only raise false alarms. Resampling entities, draws without A
+    # have alarms but no predicted failure: false alarms per predicted failure is unbounded there.
+    from logtrial.evaluation.run_figures import evaluate_run
+
+    meta = hourly_meta(["A", "B", "C"], 7 * 24)
+    scores = np.zeros(len(meta))
+    hours = 7 * 24
+    scores[[100, hours + 20, hours + 60, 2 * hours + 90]] = 1.0
+    inc = incidents([("A", "failure", 104, 105)])
+    rec = evaluate_run(meta, scores, np.zeros(len(meta), np.int8), 0.5, inc, pd.Timedelta("12h"),
+                       pd.Timedelta("1h"), bootstrap=500, unit="entity", seed=1)
+    assert rec["metrics"]["false_alarms_per_predicted_failure"] == 3.0
+    lo, hi = rec["intervals"]["false_alarms_per_predicted_failure"]
+    assert hi is None and lo is not None and np.isfinite(lo)
+    assert "no finite bound" in rec["interval_notes"]["false_alarms_per_predicted_failure"]
+    # The share predicted is 1/1: its Wilson interval is wide, not a point.
+    lo, hi = rec["intervals"]["recall_predicted"]
+    assert hi == 1.0 and lo < 0.25
