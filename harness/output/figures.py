@@ -58,14 +58,16 @@ def operating_curve_figure(records: list[dict], store, boards: list[Board], sett
     """Share of failures caught and median lead time against alarms/week/100 (log), one column per noise level."""
     plt = _plt()
     noises = list(dict.fromkeys(b.noise for b in boards if b.setting == setting))
-    fig, axes = plt.subplots(2, len(noises), figsize=(5.0 * len(noises), 7.6), squeeze=False)
-    predict = True
+    predict = any(b.task == "predict" for b in boards if b.setting == setting)
+    fig, axes = plt.subplots(2 if predict else 1, len(noises), figsize=(5.0 * len(noises), 7.6 if predict else 4.2),
+                             squeeze=False)
     for col, noise in enumerate(noises):
         mine = [b for b in boards if b.setting == setting and b.noise == noise]
         ref = next((b for b in mine if b.point != "policy"), mine[0])
         highlighted = list(ref.rows["detector"].head(HIGHLIGHT))
         seen: set[str] = set()
-        ax, ax2 = axes[0][col], axes[1][col]
+        ax = axes[0][col]
+        ax2 = axes[1][col] if predict else None
         drawn = []
         for r in sorted(records, key=lambda r: r["config"]["seed"]):
             det = r["config"]["detector"].get("label") or r["config"]["detector"]["name"]
@@ -75,38 +77,38 @@ def operating_curve_figure(records: list[dict], store, boards: list[Board], sett
             if c is None:
                 continue
             seen.add(det)
-            predict = r["config"]["task"]["name"] == "predict"
             top = det in highlighted
             colour = colours.get(det, GREY) if top else GREY
             x = c["curve_alarms_per_week_per_100"].clip(lower=0.1)
             n = int(c["curve_failures"].iloc[0])
-            kw = dict(color=colour, lw=1.8 if top else 0.8, alpha=1.0 if top else 0.6, zorder=3 if top else 1)
+            kw = dict(color=colour, lw=1.8 if top else 0.8, alpha=1.0 if top else 0.6, zorder=3 if top else 1,
+                      marker="." if top else None, ms=3)
             ax.plot(x, c["curve_caught"] / max(n, 1), label=det if top else None, **kw)
             if predict:
                 ax2.plot(x, c["curve_lead_median_h"], **kw)
             drawn.append(n)
         n = max(drawn) if drawn else 0
         for b in budgets:
-            for a in (ax, ax2):
+            for a in (ax, ax2) if predict else (ax,):
                 a.axvline(b, color="#444444", ls=":", lw=1)
             ax.text(b, 0.5, f" budget {b:g}", ha="left", va="center", rotation=90, fontsize=7, color="#444444",
                     transform=ax.get_xaxis_transform())
+        xlabel = "alarms per week per 100 entities (test, log scale; none drawn at 0.1)"
         ax.set_xscale("log")
-        ax2.set_xscale("log")
         ax.set_ylim(-0.02, 1.05)
         ax.set_title(f"{noise} labels (n = {n} test failures)")
         ax.set_ylabel("share of failures " + ("predicted" if predict else "caught"))
-        ax2.set_xlabel("alarms per week per 100 entities (test, log scale)")
-        ax.set_xlabel("alarms per week per 100 entities (test, log scale)")
+        ax.set_xlabel(xlabel, fontsize=9)
         ax.grid(alpha=0.3)
-        ax2.grid(alpha=0.3)
         ax.legend(fontsize=7, loc="upper left", title="best at first budget", title_fontsize=7)
-        if predict and ref.horizon_h:
-            ax2.axhline(ref.horizon_h, color="#444444", ls="--", lw=1)
-            ax2.text(ax2.get_xlim()[0], ref.horizon_h, f" horizon {ref.horizon_h:g} h", va="bottom", fontsize=8)
-            ax2.set_ylabel("median lead time (hours)")
-        else:
-            ax2.set_visible(False)
+        if predict:
+            ax2.set_xscale("log")
+            ax2.set_xlabel(xlabel, fontsize=9)
+            ax2.grid(alpha=0.3)
+            ax2.set_ylabel("median lead time of predicted failures (hours)")
+            if ref.horizon_h:
+                ax2.axhline(ref.horizon_h, color="#444444", ls="--", lw=1)
+                ax2.text(ax2.get_xlim()[0], ref.horizon_h, f" horizon {ref.horizon_h:g} h", va="bottom", fontsize=8)
     fig.suptitle("Operating curves on the test split, for reading; the decision uses thresholds chosen on "
                  "validation (dotted: budgets)", fontsize=10)
     fig.tight_layout()

@@ -266,8 +266,9 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
         figs["operating_curves.png"] = operating_curve_figure(in_setting, store, boards, setting, budgets, colours)
         figs["budget_dots.png"] = budget_dots_figure(boards, setting, lambda b: point_title(b, finished, short=True), colours)
         first = next(b for b in boards if b.setting == setting)
-        if first.task == "predict":
-            figs["lead_times.png"] = lead_time_figure(in_setting, first_noise, det_order, first.horizon_h, first.point)
+        if first.task == "predict":  # lead times at the loosest budget (most predicted failures to show)
+            point = str(max((b.point for b in boards if b.point != "policy"), key=float, default="policy"))
+            figs["lead_times.png"] = lead_time_figure(in_setting, first_noise, det_order, first.horizon_h, point)
         figs["pr_curves.png"] = pr_figure(in_setting, store, first_noise, det_order, colours)
     pngs = {name: _png(f) for name, f in figs.items()}
     for name, blob in pngs.items():
