@@ -215,6 +215,12 @@ def decision_text(boards: list[Board], records: list[dict]) -> str:
             lines += [f"  WARNING: {w}" for w in b.warnings]
             lines.append(to_text(board_table(b).drop(columns=["false alarms per failure"])))
             lines.append(sentence(b, records))
+            for other in (o for o in mine if o.point == b.point and o.noise != first_noise):
+                top = other.rows.iloc[0]
+                ties = [d for d, same in zip(other.rows["detector"].iloc[1:], other.rows["same_as_best"].iloc[1:]) if same]
+                warn = " (WARNING: fewer than 20 failures)" if other.warnings else ""
+                lines.append(f"  with {other.noise} labels: best {top['detector']} {top['k']}/{top['n']}"
+                             f"{'; same: ' + ', '.join(ties) if ties else ''}{warn}")
         moves = noise_movement(mine)
         for (st, point), table in moves.items():
             if st == setting:
