@@ -184,6 +184,7 @@ def pr_figure(records: list[dict], store, noise: str, order: list[str], colours:
     fig, ax = plt.subplots(figsize=(6.4, 4.8))
     rank = {d: i for i, d in enumerate(order)}
     seen: set[str] = set()
+    n_pos = 0
 
     def det_of(r: dict) -> str:
         return r["config"]["detector"].get("label") or r["config"]["detector"]["name"]
@@ -201,6 +202,7 @@ def pr_figure(records: list[dict], store, noise: str, order: list[str], colours:
         if s["label"].nunique() < 2:
             continue
         p, rc, _ = precision_recall_curve(s["label"], s["score"])
+        n_pos = int((s["label"] == 1).sum())
         colour = colours.get(det, GREY)
         ap = r["metrics"].get("auprc", math.nan)
         ax.plot(rc, p, color=colour, lw=1.8 if colour != GREY else 0.8,
@@ -208,7 +210,8 @@ def pr_figure(records: list[dict], store, noise: str, order: list[str], colours:
         seen.add(det)
     ax.set_xlabel("recall (test windows)")
     ax.set_ylabel("precision (test windows)")
-    ax.set_title(f"Precision-recall on test windows ({noise} labels; grey: others)", fontsize=10)
+    ax.set_title(f"Precision-recall on test windows ({noise} labels; n = {n_pos} positive windows; grey: others)",
+                 fontsize=9)
     ax.grid(alpha=0.3)
     ax.legend(fontsize=7)
     fig.tight_layout()
