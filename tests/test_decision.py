@@ -102,3 +102,12 @@ def test_board_combines_seeds_by_majority() -> None:
     combos = list(itertools.product("01", repeat=2))
     recs2 = [_record("a", s, "".join(c), 2.0, []) for s, c in enumerate(combos[:2])]
     assert _board("s", "clean", "5", recs2, ["a"]).rows.iloc[0]["k"] == 1  # "00","01": second failure at 1/2
+
+
+def test_seeds_testing_different_failures_are_not_pooled() -> None:
+    # A random split gives each seed its own test failures: the ranking falls back to one seed and says so.
+    recs = [_record("a", 1, "1100", 2.0, []), _record("a", 2, "101", 2.0, []),
+            _record("b", 1, "0000", 2.0, []), _record("b", 2, "111", 2.0, [])]
+    b = _board("s", "clean", "5", recs, ["a", "b"])
+    assert list(b.rows["k"]) == [2, 0] and set(b.rows["n"]) == {4}
+    assert any("seed 1 only" in w for w in b.warnings)

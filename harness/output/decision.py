@@ -94,6 +94,12 @@ def _board(setting: str, noise: str, point: str, recs: list[dict], order: list[s
     task = recs[0]["config"]["task"]["name"]
     horizon = recs[0]["config"]["task"].get("horizon")
     field_ = "predicted" if task == "predict" else "caught"
+    notes = []
+    lengths = {len(_point_of(r, point).get("outcomes", {}).get(field_, "")) for r in recs}
+    if len(lengths) > 1:  # e.g. a random split: each seed tests other failures, so seeds cannot be pooled
+        seed = min(r["config"]["seed"] for r in recs)
+        recs = [r for r in recs if r["config"]["seed"] == seed]
+        notes.append(f"seeds test different failures (e.g. a random split): this ranking uses seed {seed} only")
     by_det: dict[str, list[dict]] = {}
     for r in recs:
         by_det.setdefault(_detector(r), []).append(r)
@@ -129,7 +135,7 @@ def _board(setting: str, noise: str, point: str, recs: list[dict], order: list[s
     frame["same_as_best"] = frame["p_vs_best"] >= ALPHA
     frame.insert(0, "rank", np.arange(1, len(frame) + 1))
     n = int(frame["n"].max())
-    warnings = []
+    warnings = list(notes)
     if n < FEW_FAILURES:
         warnings.append(f"only {n} test failures: this comparison rests on fewer than {FEW_FAILURES} failures, so it "
                         f"is a mechanics check, not a ranking; differences below "

@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from logtrial.errors import DataError
+from logtrial.evaluation.paired import FEW_FAILURES
 from logtrial.output.decision import (
     METHOD,
     Board,
@@ -218,7 +219,7 @@ def decision_text(boards: list[Board], records: list[dict]) -> str:
             for other in (o for o in mine if o.point == b.point and o.noise != first_noise):
                 top = other.rows.iloc[0]
                 ties = [d for d, same in zip(other.rows["detector"].iloc[1:], other.rows["same_as_best"].iloc[1:]) if same]
-                warn = " (WARNING: fewer than 20 failures)" if other.warnings else ""
+                warn = f" (WARNING: fewer than {FEW_FAILURES} failures)" if other.n < FEW_FAILURES else ""
                 lines.append(f"  with {other.noise} labels: best {top['detector']} {top['k']}/{top['n']}"
                              f"{'; same: ' + ', '.join(ties) if ties else ''}{warn}")
         moves = noise_movement(mine)
