@@ -87,6 +87,10 @@ def test_board_ranks_by_failures_then_lead_and_marks_ties() -> None:
     b = _board("s", "clean", "5", recs, ["a", "b", "c", "d"])
     assert list(b.rows["detector"]) == ["a", "d", "b", "c"]  # a and d tie on 5/10, a leads longer
     assert list(b.rows["k"]) == [5, 5, 4, 0] and set(b.rows["n"]) == {10}
+    assert list(b.rows["rank"]) == [1, 2, 3, 4]
+    tied = _board("s", "clean", "5", [_record("x", 1, "1100", 1.0, [2, 2]), _record("y", 1, "0110", 1.0, [2, 2]),
+                                      _record("z", 1, "0100", 1.0, [3])], ["x", "y", "z"])
+    assert list(tied.rows["detector"]) == ["x", "y", "z"] and list(tied.rows["rank"]) == [1, 1, 3]
     # c misses the 5 failures a catches: p = 2 * 0.5**5 = 0.0625 -> still indistinguishable at 10 failures.
     assert b.rows.set_index("detector").loc["c", "p_vs_best"] == pytest.approx(0.0625)
     assert b.rows["same_as_best"].all()

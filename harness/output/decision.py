@@ -2,7 +2,8 @@
 
 Per (setting, noise level, operating point) the detectors are ranked by failures
 caught on the test split (predicted ahead for the predict task, caught at all for
-the detect task), ties broken by the longer median lead time. With several seeds a
+the detect task), ties broken by the longer median lead time; exact ties share a rank
+(listed in the experiment's order). With several seeds a
 failure counts as caught when at least half of the seeds catch it, so every row is a
 whole k of n failures. The best detector is compared with each other one by the
 exact McNemar test on the per-failure outcomes (same failures, paired); those with
@@ -128,12 +129,16 @@ def _board(setting: str, noise: str, point: str, recs: list[dict], order: list[s
     if frame.empty:
         return Board(setting, noise, point, task, None, frame, 0)
     frame = frame.assign(_lead=frame["lead_h"].fillna(-1.0)).sort_values(
-        ["k", "_lead", "order"], ascending=[False, False, True], kind="stable").drop(columns="_lead")
+        ["k", "_lead", "order"], ascending=[False, False, True], kind="stable").reset_index(drop=True)
+    # Equal failures caught and equal median lead share a rank (1, 1, 3, ...).
+    new = (frame["k"].ne(frame["k"].shift()) | frame["_lead"].ne(frame["_lead"].shift())).to_numpy()
+    rank = np.maximum.accumulate(np.where(new, np.arange(1, len(frame) + 1), 0))
+    frame = frame.drop(columns="_lead")
     best = str(frame["detector"].iloc[0])
     p = [1.0 if d == best else mcnemar_exact(outcomes[best], outcomes[d])[0] for d in frame["detector"]]
     frame["p_vs_best"] = p
     frame["same_as_best"] = frame["p_vs_best"] >= ALPHA
-    frame.insert(0, "rank", np.arange(1, len(frame) + 1))
+    frame.insert(0, "rank", rank)
     n = int(frame["n"].max())
     warnings = list(notes)
     if n < FEW_FAILURES:
