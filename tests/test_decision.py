@@ -115,3 +115,13 @@ def test_seeds_testing_different_failures_are_not_pooled() -> None:
     b = _board("s", "clean", "5", recs, ["a", "b"])
     assert list(b.rows["k"]) == [2, 0] and set(b.rows["n"]) == {4}
     assert any("seed 1 only" in w for w in b.warnings)
+
+
+def test_movement_sentence_names_shared_first_places() -> None:
+    import pandas as pd
+    from logtrial.output.decision import movement_sentence
+
+    t = pd.DataFrame({"detector": ["a", "b", "c"], "clean": [1, 1, 3], "noisy": [3, 1, 1]})
+    assert movement_sentence(t) == "first with clean labels: a, b; with noisy labels: b, c; fell back: a (rank 3)."
+    same = pd.DataFrame({"detector": ["a", "b"], "clean": [1, 2], "noisy": [1, 2]})
+    assert movement_sentence(same) == "first place stays with a from clean to noisy labels."

@@ -237,14 +237,17 @@ def noise_movement(boards: list[Board]) -> dict[tuple[str, str], pd.DataFrame]:
 
 
 def movement_sentence(table: pd.DataFrame) -> str:
-    """How the best detector's rank moves from the first to the last noise level."""
+    """Which detectors share first place at the first and at the last noise level, and who fell back."""
     cols = list(table.columns[1:])
     if len(cols) < 2:
         return "One noise level only: nothing to compare."
     first, last = cols[0], cols[-1]
-    best0 = table.sort_values(first)["detector"].iloc[0]
-    best1 = table.sort_values(last)["detector"].iloc[0]
-    r = table.set_index("detector").loc[best0, last]
-    if best0 == best1:
-        return f"{best0} stays first from {first} to {last} labels."
-    return f"{best0} leads with {first} labels but ranks {int(r) if r == r else '–'} with {last} labels, where {best1} leads."
+    lead0 = list(table.loc[table[first] == 1, "detector"])
+    lead1 = list(table.loc[table[last] == 1, "detector"])
+    if set(lead0) == set(lead1):
+        who = lead0[0] if len(lead0) == 1 else ", ".join(lead0) + " (tied)"
+        return f"first place stays with {who} from {first} to {last} labels."
+    fell = [f"{d} (rank {int(r)})" for d, r in zip(table["detector"], table[last]) if d in lead0 and d not in lead1
+            and r == r]
+    return (f"first with {first} labels: {', '.join(lead0)}; with {last} labels: {', '.join(lead1)}"
+            + (f"; fell back: {', '.join(fell)}" if fell else "") + ".")
