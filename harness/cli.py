@@ -175,7 +175,9 @@ def cmd_report(args: argparse.Namespace) -> int:
 
     exp = load_experiment(Path(args.experiment), output=args.out)
     paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs},
+                         description=exp.raw.get("description"),
                          tolerance=exp.raw.get("tolerance"))
+    print(paths["decision"] + "\n\nAll figures at the threshold policy:")
     print(to_text(compact(paths["table"])))
     print(f"\nreport: {paths['markdown']}\n        {paths['html']}\n        {paths['csv']}")
     print(f"tracking: mlflow ui --backend-store-uri sqlite:///{(exp.output / 'mlflow.db').resolve()}")

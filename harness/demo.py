@@ -38,13 +38,14 @@ def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True) 
           f"{len(experiment_order(exp)[1])} noise levels x seeds", flush=True)
     counts = run_experiment(exp, home, progress=True, track=track)
     print("[4/4] writing the report", flush=True)
-    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs})
+    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs},
+                         description=exp.raw.get("description"))
     print()
+    print(paths["decision"] + "\n\nAll figures at the threshold policy:")
     print(to_text(compact(paths["table"])))
     print(f"\n{counts['finished']} runs finished, {counts['failed']} failed, {counts['skipped']} reused from before; "
           f"{time.time() - t0:.0f} s")
-    print(f"report: {paths['markdown']}  (also {paths['html'].name}, results.csv, robustness.png, lead_times.png, "
-          f"pr_curves.png)")
+    print(f"report: {paths['markdown']}  (also {paths['html'].name}, results.csv, {', '.join(paths['pictures'])})")
     print(f"tracking: mlflow ui --backend-store-uri sqlite:///{(exp.output / 'mlflow.db').resolve()}")
     return 1 if counts["failed"] else 0
 

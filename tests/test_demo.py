@@ -23,5 +23,8 @@ def test_demo_runs_the_whole_job_on_a_smaller_grid(tmp_path: Path, home: Path, c
         assert stage in text
     assert "grouping accuracy 1.0000" in text and "0 quarantined" in text
     assert "rate_rule" in text and "pca" in text and "2 runs finished, 0 failed" in text
-    for name in ("report.md", "report.html", "results.csv", "robustness.png", "lead_times.png", "pr_curves.png"):
+    assert "DECISION" in text and "2 alarms/week/100" in text  # the decision section is printed
+    assert text.index("DECISION") < text.index("All figures at the threshold policy")
+    for name in ("report.md", "report.html", "results.csv", "operating_curves.png", "budget_dots.png",
+                 "lead_times.png", "pr_curves.png"):
         assert (out / name).is_file(), name

@@ -374,13 +374,23 @@ def test_run_record_combines_window_incident_and_interval_figures() -> None:
     assert "undefined" not in m
     for name, (lo, hi) in rec["intervals"].items():
         assert lo <= m[name] <= hi, name
-    assert rec["intervals"]["recall_predicted"] == list(
-        bootstrap_ci(incident_metrics(meta, scores, 0.5, incidents, "6h", "15min"), "recall_predicted", "entity", 300, 0.9, 3)
+    # Shares of failures: Wilson score interval on k of n failures (scipy.stats.binomtest as the reference).
+    from scipy.stats import binomtest
+
+    ci = binomtest(m["predicted"], m["failures"]).proportion_ci(confidence_level=0.9, method="wilson")
+    assert rec["intervals"]["recall_predicted"] == [pytest.approx(ci.low), pytest.approx(ci.high)]
+    # Other figures: the bootstrap over entities.
+    assert rec["intervals"]["false_alarms_per_predicted_failure"] == list(
+        bootstrap_ci(incident_metrics(meta, scores, 0.5, incidents, "6h", "15min"),
+                     "false_alarms_per_predicted_failure", "entity", 300, 0.9, 3)
     )
-    # Incident unit: alarm-only figures get no interval; bootstrap 0: none at all.
+    assert rec["outcomes"]["predicted"].count("1") == m["predicted"]
+    # Incident unit: alarm-only figures get no interval; bootstrap 0: only the Wilson intervals.
     rec = evaluate_run(meta, scores, labels, 0.5, incidents, "6h", "15min", bootstrap=100, unit="incident")
     assert "alarms_per_week_per_100_entities" not in rec["intervals"] and "recall_predicted" in rec["intervals"]
-    assert evaluate_run(meta, scores, labels, 0.5, incidents, "6h", "15min", bootstrap=0)["intervals"] == {}
+    no_boot = evaluate_run(meta, scores, labels, 0.5, incidents, "6h", "15min", bootstrap=0)["intervals"]
+    assert set(no_boot) == {"recall_predicted", "recall_detected_or_predicted", "share_lead_ge_1h",
+                            "share_lead_ge_6h", "share_lead_ge_24h"}
     # No positive window: window figures become NaN with the reason recorded.
     rec = evaluate_run(meta, scores, np.zeros(len(meta), np.int8), 0.5, incidents, "6h", "15min", bootstrap=0)
     assert np.isnan(rec["metrics"]["auroc"]) and "no positive window" in rec["metrics"]["undefined"]["auroc"]

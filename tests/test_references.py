@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pandas as pd
+import pytest
 from logtrial.output.report import load_results
 from logtrial.running.experiment import load_experiment
 from logtrial.running.runs import run_experiment
@@ -46,13 +47,19 @@ def test_demo_reference_regenerates_exactly_for_two_detectors(tmp_path: Path, ho
     pd.testing.assert_frame_equal(fresh, committed, check_exact=True, check_dtype=False)
 
 
-def test_reference_experiments_are_committed_with_results() -> None:
-    for name in ("demo", "bgl-2k"):
+@pytest.mark.parametrize("name", ["demo", "bgl-2k"])
+def test_reference_experiments_are_committed_with_results(name: str) -> None:
+    for name in (name,):
         folder = ROOT / "reports" / name
         assert (folder / "experiment.yaml").is_file()
-        for f in ("results.csv", "summary.csv", "report.md", "report.html", "robustness.png"):
+        for f in ("results.csv", "summary.csv", "report.md", "report.html", "operating_curves.png", "budget_dots.png"):
             assert (folder / "results" / f).is_file(), f"{name}: {f} missing"
         exp = load_experiment(folder / "experiment.yaml")
         table = pd.read_csv(folder / "results" / "results.csv")
         assert set(table["run_id"]) == {r.run_id for r in exp.runs}, f"{name}: committed results are stale"
+        # The decision section comes first and names, per budget, the best detector.
+        report = (folder / "results" / "report.md").read_text()
+        assert report.index("## Decision") < report.index("## All figures")
+        for b in exp.runs[0].budgets:
+            assert f"{b:g} alarms/week/100" in report
 

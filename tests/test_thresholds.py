@@ -155,7 +155,8 @@ def test_max_alarms_on_hand_made_timeline() -> None:
     # 2 alarms: cut 0.7 gives 3 alarms (rate 1.5), cut 0.8 gives 2 (rate 1.0) -> 0.8.
     choice = choose_threshold({"kind": "max_alarms", "k": 1}, scores, None, meta, pd.Timedelta("1h"))
     assert choice.threshold == 0.8
-    assert choice.achieved == {"alarms": 2, "alarms_per_entity_week": 1.0, "entity_weeks": 2.0, "windows": 14}
+    assert choice.achieved == {"alarms": 2, "alarms_per_entity_week": 1.0, "alarms_per_week_per_100_entities": 100.0,
+                               "entity_weeks": 2.0, "windows": 14}
     # Cool-down 2 days: alerts one day apart chain. Cut 0.7: A's days 1-2 form one alarm, B one
     # -> 2 alarms. Even cut 0.1 (every window alerts) gives one unbroken daily chain per entity
     # -> 2 alarms, rate 1.0, so the lowest candidate 0.1 is chosen.
@@ -202,6 +203,34 @@ def test_max_alarms_respects_k_and_is_lowest(seed: int) -> None:
     assert choice.achieved["alarms_per_entity_week"] == pytest.approx(rate(choice.threshold))
     for lower in np.unique(scores[scores < choice.threshold]):
         assert rate(lower) > k
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_alarm_budget_is_max_alarms_in_operator_units(seed: int) -> None:
+    # One rule, two units: a budget of b alarms per week per 100 entities is k = b / 100 per entity-week.
+    rng = np.random.default_rng(seed)
+    meta = daily_meta([f"e{i}" for i in range(8)], 28)
+    scores = np.round(rng.gamma(2.0, size=len(meta)), 2)
+    for b in (2.0, 5.0, 20.0, 150.0):
+        by_budget = choose_threshold({"kind": "alarm_budget", "per_week_per_100": b}, scores, None, meta, "1h")
+        by_k = choose_threshold({"kind": "max_alarms", "k": b / 100}, scores, None, meta, "1h")
+        assert by_budget.threshold == by_k.threshold
+        assert by_budget.achieved["alarms_per_week_per_100_entities"] <= b
+        assert by_budget.achieved["alarms_per_week_per_100_entities"] == pytest.approx(
+            100 * by_budget.achieved["alarms_per_entity_week"])
+
+
+def test_alarm_budget_on_hand_made_timeline() -> None:
+    # 2 entities x 7 days = 2 entity-weeks; a budget of 100 per week per 100 entities = 2 alarms:
+    # the same cut (0.8) as max_alarms k=1 in test_max_alarms_on_hand_made_timeline.
+    meta = daily_meta(["A", "B"], 7)
+    scores = np.full(14, 0.1)
+    scores[[0, 1, 7]] = [0.9, 0.8, 0.7]
+    choice = choose_threshold({"kind": "alarm_budget", "per_week_per_100": 100}, scores, None, meta, "1h")
+    assert choice.threshold == 0.8 and choice.achieved["alarms"] == 2
+    assert choice.policy.as_dict() == {"kind": "alarm_budget", "per_week_per_100": 100.0}
+    with pytest.raises(ConfigError, match="threshold.per_week_per_100: alarms per week per 100 entities must be positive"):
+        load_policy({"kind": "alarm_budget", "per_week_per_100": 0})
 
 
 def test_max_alarms_needs_cooldown_and_meta() -> None:

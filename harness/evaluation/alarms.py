@@ -34,8 +34,12 @@ Rules (one set for every detector)
   ``[span_start, span_end)``; alarms are matched against every incident given,
   so an alarm just before the span's end that predicts a failure after it is a
   true alarm (that failure is not counted).
-- **Rates**: alarms per week per 100 entities = alarms / span weeks /
-  (entities / 100), span and entity count from the evaluated windows.
+- **Rates**: alarms per week per 100 entities = alarms / weeks / (entities / 100),
+  where the weeks are those of the span the alarms were counted over: every
+  evaluated window raises alarms, so it is the windows' span (earliest start to
+  latest end), even when failures are counted over a shorter span (e.g. from
+  the test start plus the horizon). Dividing by the shorter span would inflate
+  the rate (by 25 % for a 7-day horizon on a 35-day test span).
 - **Lead-time shares**: failures predicted at least 1 h / 6 h / 24 h ahead,
   over all counted failures.
 """
@@ -291,7 +295,7 @@ def summarise_weighted(report: "IncidentReport", wf: np.ndarray, wa: np.ndarray)
             paged_for_nothing / np.where(n_any > 0, n_any, 1),
             np.where(paged_for_nothing > 0, np.inf, np.nan),
         )
-    weeks = report.span_weeks
+    weeks = report.alarm_weeks
     alarms = false_a + nonf_a + true_a
     out: dict[str, np.ndarray] = {
         "failures": n_fail,
@@ -327,11 +331,18 @@ class IncidentReport:
     horizon: pd.Timedelta = pd.Timedelta(0)
     cooldown: pd.Timedelta = pd.Timedelta(0)
     threshold: float = float("nan")
+    alarm_span: tuple[pd.Timestamp, pd.Timestamp] | None = None
 
     @property
     def span_weeks(self) -> float:
-        """Length of the evaluated span in weeks."""
+        """Length of the evaluated span (where failures are counted) in weeks."""
         return (pd.Timestamp(self.span[1]) - pd.Timestamp(self.span[0])).value / _WEEK_NS
+
+    @property
+    def alarm_weeks(self) -> float:
+        """Length in weeks of the span the alarms were counted over (the evaluated span when not given)."""
+        lo, hi = self.alarm_span if self.alarm_span is not None else self.span
+        return (pd.Timestamp(hi) - pd.Timestamp(lo)).value / _WEEK_NS
 
     def summary(self) -> dict[str, float]:
         """Headline incident-level figures (see the module docstring for each rule).
@@ -400,7 +411,8 @@ def incident_metrics(
     """Alarms and failure outcomes of one detector's scores on the evaluated windows, as an IncidentReport.
 
     ``entities`` (fleet size) and ``span`` default to the distinct entities and the
-    time range of ``windows_meta``.
+    time range of ``windows_meta``. ``span`` only decides which failures count;
+    alarm rates divide by the windows' own span, over which the alarms were counted.
     """
     h = check_horizon(horizon)
     cd = check_cooldown(cooldown)
@@ -408,7 +420,8 @@ def incident_metrics(
     n_ent = len(win_entities) if entities is None else entities
     if isinstance(n_ent, bool) or not isinstance(n_ent, (int, np.integer)) or n_ent <= 0:
         raise ConfigError(f"metrics.entities: expected a positive number of entities, got {n_ent!r}")
-    lo, hi = evaluation_span(windows_meta) if span is None else (pd.Timestamp(span[0]), pd.Timestamp(span[1]))
+    alarm_span = evaluation_span(windows_meta)
+    lo, hi = alarm_span if span is None else (pd.Timestamp(span[0]), pd.Timestamp(span[1]))
     if not hi > lo:
         raise MetricError(f"evaluated span must have positive length, got {lo} .. {hi}")
 
@@ -444,4 +457,5 @@ def incident_metrics(
         horizon=h,
         cooldown=cd,
         threshold=float(threshold),
+        alarm_span=alarm_span,
     )

@@ -77,6 +77,7 @@ def _resampled_report(report: "IncidentReport", unit: str, draw: np.ndarray) -> 
         horizon=report.horizon,
         cooldown=report.cooldown,
         threshold=report.threshold,
+        alarm_span=report.alarm_span,
     )
 
 

@@ -13,6 +13,10 @@ Policies (a window alerts when ``score >= threshold``):
   number at most ``k`` per entity-week on validation. Merging makes the alarm
   count non-monotone in the threshold (an extra alert can join two alarms), so
   the count is computed exactly for every candidate at once.
+- ``alarm_budget`` (``per_week_per_100``): the same rule as ``max_alarms`` in the
+  unit operators budget in, alarms per week per 100 entities
+  (``per_week_per_100 = 100 * k``); both run through one function. An experiment's
+  ``budgets: [2, 5, 20]`` evaluates every detector at each such budget.
 - ``quantile`` (``q``): ``numpy.quantile(scores, q)`` (linear interpolation).
 
 Candidates are the distinct validation scores plus one value just above the
@@ -32,7 +36,9 @@ from logtrial.evaluation.alarms import alarm_counts, check_cooldown, evaluation_
 from logtrial.evaluation.metrics import MetricError, clean_inputs, pr_points
 from logtrial.labels.incidents import times_ns
 
-POLICY_KINDS = {"best_f1": None, "min_precision": "p", "max_alarms": "k", "quantile": "q"}
+POLICY_KINDS = {
+    "best_f1": None, "min_precision": "p", "max_alarms": "k", "alarm_budget": "per_week_per_100", "quantile": "q",
+}
 
 
 @dataclass(frozen=True)
@@ -43,6 +49,7 @@ class ThresholdPolicy:
     p: float | None = None
     k: float | None = None
     q: float | None = None
+    per_week_per_100: float | None = None
 
     def as_dict(self) -> dict:
         """Canonical plain form for hashing and run records."""
@@ -101,6 +108,8 @@ def load_policy(source: dict | ThresholdPolicy, where: str = "threshold") -> Thr
         raise ConfigError(f"{where}.q: quantile must lie in [0, 1], got {x}")
     if param == "k" and not x > 0.0:
         raise ConfigError(f"{where}.k: alarms per entity-week must be positive, got {x}")
+    if param == "per_week_per_100" and not x > 0.0:
+        raise ConfigError(f"{where}.per_week_per_100: alarms per week per 100 entities must be positive, got {x}")
     return ThresholdPolicy(kind=kind, **{param: x})
 
 
@@ -142,8 +151,18 @@ def _min_precision(labels: np.ndarray, scores: np.ndarray, p: float) -> tuple[fl
     }
 
 
+def budget_key(budget: float) -> str:
+    """The key of a budget in run records (``format(b, "g")``: 2 -> "2", 2.5 -> "2.5")."""
+    return format(float(budget), "g")
+
+
+def budget_policy(budget: float) -> ThresholdPolicy:
+    """The alarm_budget policy for a budget in alarms per week per 100 entities."""
+    return load_policy({"kind": "alarm_budget", "per_week_per_100": budget}, "budgets[]")
+
+
 def _max_alarms(scores: np.ndarray, meta: pd.DataFrame, k: float, cooldown: pd.Timedelta) -> tuple[float, dict]:
-    """Lowest threshold whose merged alarms per entity-week on validation are at most k."""
+    """Lowest threshold whose merged alarms per entity-week on validation are at most k (the budget rule)."""
     lo, hi = evaluation_span(meta)
     weeks = (hi - lo) / pd.Timedelta(weeks=1)
     if not weeks > 0:
@@ -157,6 +176,7 @@ def _max_alarms(scores: np.ndarray, meta: pd.DataFrame, k: float, cooldown: pd.T
     return float(cand[i]), {
         "alarms": int(counts[i]),
         "alarms_per_entity_week": float(rate[i]),
+        "alarms_per_week_per_100_entities": float(100.0 * rate[i]),
         "entity_weeks": float(n_ent * weeks),
     }
 
@@ -182,12 +202,13 @@ def choose_threshold(
             thr, achieved = _best_f1(labels_val, s)
         else:
             thr, achieved = _min_precision(labels_val, s, float(pol.p))
-    elif pol.kind == "max_alarms":
+    elif pol.kind in ("max_alarms", "alarm_budget"):
         if meta_val is None or len(meta_val) != len(s):
-            raise MetricError("threshold policy max_alarms: needs the validation window meta, one row per score")
+            raise MetricError(f"threshold policy {pol.kind}: needs the validation window meta, one row per score")
         if cooldown is None:
-            raise ConfigError("metrics.cooldown: required by the max_alarms threshold policy")
-        thr, achieved = _max_alarms(s, meta_val, float(pol.k), check_cooldown(cooldown))
+            raise ConfigError(f"metrics.cooldown: required by the {pol.kind} threshold policy")
+        k = float(pol.k) if pol.kind == "max_alarms" else float(pol.per_week_per_100) / 100.0
+        thr, achieved = _max_alarms(s, meta_val, k, check_cooldown(cooldown))
     else:
         thr = float(np.quantile(s, float(pol.q)))
         achieved = {"alert_share": float(np.mean(s >= thr))}

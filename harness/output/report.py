@@ -1,4 +1,4 @@
-"""Reports: comparison tables (Markdown, CSV, HTML) and plots from recorded runs."""
+"""Reports: the decision section first, then comparison tables (Markdown, CSV, HTML) and plots from recorded runs."""
 
 from __future__ import annotations
 
@@ -12,6 +12,18 @@ import numpy as np
 import pandas as pd
 from logtrial.errors import DataError
 from logtrial.output.tolerance import tolerance_section
+from logtrial.evaluation.paired import FEW_FAILURES
+from logtrial.output.decision import (
+    METHOD,
+    Board,
+    board_table,
+    decision_boards,
+    format_duration,
+    movement_sentence,
+    noise_movement,
+    point_title,
+    sentence,
+)
 from logtrial.running.experiment import vocabulary_label
 
 # Headline figures: (record key, column title).
@@ -33,8 +45,15 @@ HEADLINE_DETECT = [
     ("false_alarms_per_caught_failure", "false alarms / caught failure"),
     ("alarms_per_week_per_100_entities", "alarms / week / 100 nodes"),
 ]
-CURVES = [("auprc", "AUPRC"), ("recall_predicted", "share of failures predicted"),
-          ("false_alarms_per_predicted_failure", "false alarms per predicted failure")]
+# Figures kept per budget in results.csv (prefix b<budget>_).
+BUDGET_COLUMNS = ("threshold", "failures", "predicted", "recall_predicted", "recall_detected_or_predicted",
+                  "alarms_per_week_per_100_entities", "false_alarms_per_predicted_failure", "lead_time_median_h")
+
+
+def _short(mapping: dict) -> str:
+    """key=value pairs with durations written as 1h / 7d."""
+    return " ".join(f"{k}={format_duration(v) if k in ('size', 'step', 'gap', 'horizon') else v}"
+                    for k, v in mapping.items())
 
 
 def load_results(records: list[dict]) -> pd.DataFrame:
@@ -46,8 +65,8 @@ def load_results(records: list[dict]) -> pd.DataFrame:
         cfg = r["config"]
         row = {
             "run_id": r["run_id"], "dataset": cfg["dataset"],
-            "windows": " ".join(f"{k}={v}" for k, v in cfg["windows"].items()),
-            "task": " ".join(f"{k}={v}" for k, v in cfg["task"].items()),
+            "windows": _short(cfg["windows"]),
+            "task": _short(cfg["task"]),
             "vocabulary": vocabulary_label(cfg.get("vocabulary")),
             "noise": cfg["noise"].get("name", "clean"), "noise_level": cfg["noise"].get("level"),
             "detector": cfg["detector"].get("label") or cfg["detector"]["name"], "seed": cfg["seed"],
@@ -55,7 +74,13 @@ def load_results(records: list[dict]) -> pd.DataFrame:
         }
         row.update({k: v for k, v in r["metrics"].items() if isinstance(v, (int, float)) or v is None})
         for k, (lo, hi) in (r.get("intervals") or {}).items():
-            row[f"{k}_low"], row[f"{k}_high"] = lo, hi
+            row[f"{k}_low"] = math.nan if lo is None else lo
+            row[f"{k}_high"] = math.nan if hi is None else hi
+        for key, point in (r.get("at_budget") or {}).items():
+            for name in BUDGET_COLUMNS:
+                v = point["threshold"]["value"] if name == "threshold" else point["metrics"].get(name)
+                if isinstance(v, (int, float)):
+                    row[f"b{key}_{name}"] = v
         rows.append(row)
     if not rows:
         raise DataError("no finished runs to report (run the experiment first: logtrial run EXPERIMENT.yaml)")
@@ -80,11 +105,11 @@ def _cell(row: pd.Series, key: str) -> str:
         return "–"
     if isinstance(v, float) and math.isinf(v):
         return "∞"
-    text = f"{v:.3f}" if abs(v) < 10 else f"{v:.1f}"
+    text = f"{v:.2f}" if abs(v) < 10 else f"{v:.1f}"
     lo, hi = row.get(f"{key}_low"), row.get(f"{key}_high")
-    if lo is not None and hi is not None and not (pd.isna(lo) or pd.isna(hi)):
-        fmt = (lambda x: "∞" if math.isinf(x) else (f"{x:.2f}" if abs(x) < 10 else f"{x:.0f}"))
-        text += f" [{fmt(lo)}, {fmt(hi)}]"
+    fmt = (lambda x: f"{x:.2f}" if abs(x) < 10 else f"{x:.1f}")
+    if lo is not None and not pd.isna(lo):
+        text += f" [{fmt(lo)}, {fmt(hi)}]" if hi is not None and not pd.isna(hi) else f" [{fmt(lo)}, no upper bound*]"
     return text
 
 
@@ -128,120 +153,6 @@ def to_text(table: pd.DataFrame, max_width: int = 160) -> str:
     return "\n".join([head, "  ".join("-" * w for w in widths), *body])
 
 
-def _noise_axis(summary: pd.DataFrame) -> tuple[dict, str]:
-    """x position per noise level: its numeric level when every level has one, else its order."""
-    names = list(dict.fromkeys(summary["noise"]))
-    levels = summary.groupby("noise", sort=False)["noise_level"].first()
-    if levels.notna().all():
-        return {n: float(levels[n]) for n in names}, "noise level"
-    return {n: float(i) for i, n in enumerate(names)}, "noise spec"
-
-
-def robustness_figure(summary: pd.DataFrame):
-    """Metric against noise level, one line per detector, shaded intervals."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    xs, xlabel = _noise_axis(summary)
-    curves = CURVES
-    if summary["task"].astype(str).str.contains("name=detect").all():
-        curves = [("auprc", "AUPRC"), ("recall_detected_or_predicted", "share of failures caught"),
-                  ("false_alarms_per_caught_failure", "false alarms per caught failure")]
-    present = [(k, t) for k, t in curves if k in summary.columns]
-    fig, axes = plt.subplots(1, len(present), figsize=(5.2 * len(present), 4.2), squeeze=False)
-    colours = plt.get_cmap("tab20").colors
-    for ax, (key, title) in zip(axes[0], present):
-        varying = [c for c in ("dataset", "vocabulary", "windows", "task") if summary[c].nunique() > 1]
-        series = summary["detector"]
-        for c in varying:
-            series = series + " | " + summary[c].astype(str)
-        for i, (det, g) in enumerate(summary.groupby(series, sort=False)):
-            g = g.assign(x=g["noise"].map(xs)).sort_values("x")
-            y = g[key].replace([np.inf, -np.inf], np.nan)
-            (line,) = ax.plot(g["x"], y, marker="o", label=det, color=colours[(2 * i) % 20 + (2 * i) // 20 % 2])
-            if f"{key}_low" in g:
-                lo = g[f"{key}_low"].replace([np.inf, -np.inf], np.nan)
-                hi = g[f"{key}_high"].replace([np.inf, -np.inf], np.nan)
-                ax.fill_between(g["x"], lo, hi, alpha=0.07, color=line.get_color())
-        if key.startswith("false_alarms_per"):
-            ax.set_yscale("log")
-        ax.set_title(title)
-        ax.set_xlabel(xlabel)
-        ax.set_xticks(list(xs.values()), [f"{n}" for n in xs] if xlabel == "noise spec" else
-                      [f"{v:g}" for v in xs.values()], rotation=30 if xlabel == "noise spec" else 0)
-        ax.grid(alpha=0.3)
-    axes[0][0].legend(fontsize=7, ncol=2)
-    fig.suptitle("Robustness to label noise (test scored against the truth; shaded: bootstrap interval)")
-    fig.tight_layout()
-    return fig
-
-
-def lead_time_figure(records: list[dict], noise: str, order: list[str] | None = None):
-    """Distribution of lead times (hours) of predicted failures per detector at one noise level."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    data: dict[str, list[float]] = {}
-    for r in records:
-        if r.get("status") == "finished" and r["config"]["noise"].get("name", "clean") == noise:
-            det = r["config"]["detector"].get("label") or r["config"]["detector"]["name"]
-            data.setdefault(det, []).extend(r.get("lead_times_h") or [])
-    fig, ax = plt.subplots(figsize=(max(6, 0.7 * len(data) + 2), 4.2))
-    rank = {d: i for i, d in enumerate(order or [])}
-    names = sorted(data, key=lambda d: (rank.get(d, len(rank)), d))
-    ax.boxplot([data[n] if data[n] else [np.nan] for n in names], showfliers=True)
-    ax.set_xticks(range(1, len(names) + 1), names, rotation=35, ha="right")
-    ax.set_ylabel("lead time before failure (hours)")
-    ax.set_title(f"Warning lead time of predicted failures (noise: {noise}, all seeds)")
-    ax.grid(alpha=0.3, axis="y")
-    fig.tight_layout()
-    return fig
-
-
-def pr_figure(records: list[dict], store, noise: str, order: list[str] | None = None):
-    """Precision-recall curves on the test windows per detector (first seed) at one noise level."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-    from sklearn.metrics import precision_recall_curve
-
-    fig, ax = plt.subplots(figsize=(6.4, 4.8))
-    ax.set_prop_cycle(color=plt.get_cmap("tab20").colors)
-    rank = {d: i for i, d in enumerate(order or [])}
-    seen = set()
-
-    def position(r: dict) -> tuple:
-        det = r["config"]["detector"].get("label") or r["config"]["detector"]["name"]
-        return rank.get(det, len(rank)), det, r["config"]["seed"]
-
-    for r in sorted((r for r in records if r.get("status") == "finished"), key=position):
-        det = r["config"]["detector"].get("label") or r["config"]["detector"]["name"]
-        if r["config"]["noise"].get("name", "clean") != noise or det in seen:
-            continue
-        path = store.path(r["run_id"], ".scores.parquet")
-        if not path.is_file():
-            continue
-        s = pd.read_parquet(path)
-        s = s[(s["part"] == "test") & (s["label"] >= 0)]
-        if s["label"].nunique() < 2:
-            continue
-        p, rc, _ = precision_recall_curve(s["label"], s["score"])
-        ax.plot(rc, p, label=f"{det} (AP {r['metrics'].get('auprc', float('nan')):.2f})")
-        seen.add(det)
-    ax.set_xlabel("recall (test windows)")
-    ax.set_ylabel("precision")
-    ax.set_title(f"Precision-recall, test split (noise: {noise})")
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=7)
-    fig.tight_layout()
-    return fig
-
-
 def _png(fig) -> bytes:
     import matplotlib.pyplot as plt
 
@@ -260,14 +171,83 @@ def order_like(summary: pd.DataFrame, detectors: list[str], noises: list[str]) -
                                               kind="stable").drop(columns="_k")
 
 
+def decision_markdown(boards: list[Board], records: list[dict]) -> list[str]:
+    """The decision section in Markdown: method, rankings per budget and noise level, sentences, noise movement."""
+    if not boards:
+        return ["## Decision", "", "No run recorded per-failure outcomes; re-run the experiment to rank detectors.", ""]
+    out = ["## Decision: which detector at which alarm budget", "",
+           f"Ranked by failures caught on the test split, ties by median lead time. Thresholds are chosen on the "
+           f"validation split for each budget (alarms per week per 100 entities). Paired comparison: {METHOD}. "
+           f"'same' = cannot be told apart from the best (p >= 0.05). With several seeds a failure counts as "
+           f"caught when at least half the seeds catch it.", ""]
+    for setting in dict.fromkeys(b.setting for b in boards):
+        mine = [b for b in boards if b.setting == setting]
+        out += [f"### {setting}", ""]
+        for b in mine:
+            out += [f"#### {point_title(b, records)} — {b.noise} labels (n = {b.n} test failures; {b.power_note})", ""]
+            out += [f"> **Warning:** {w}" for w in b.warnings] + ([""] if b.warnings else [])
+            out += [to_markdown(board_table(b)), ""]
+        out += ["**What to pick**", ""]
+        first_noise = mine[0].noise
+        out += [f"- {sentence(b, records)}" for b in mine if b.noise == first_noise] + [""]
+        moves = noise_movement(mine)
+        out += ["**How the ranking moves with label noise** (rank at each noise level)", ""]
+        for (st, point), table in moves.items():
+            if st != setting:
+                continue
+            title = point_title(next(b for b in mine if b.point == point), records)
+            out += [f"At {title}: {movement_sentence(table)}", "",
+                    to_markdown(table.astype({c: "Int64" for c in table.columns[1:]})), ""]
+    return out
+
+
+def decision_text(boards: list[Board], records: list[dict]) -> str:
+    """The decision section for the terminal: per budget the first noise level's ranking, sentences, warnings."""
+    if not boards:
+        return "decision: no run recorded per-failure outcomes; re-run the experiment"
+    lines = ["DECISION (test split; thresholds chosen on validation; paired test: exact McNemar)"]
+    for setting in dict.fromkeys(b.setting for b in boards):
+        mine = [b for b in boards if b.setting == setting]
+        lines.append(f"\n{setting}")
+        first_noise = mine[0].noise
+        for b in mine:
+            if b.noise != first_noise:
+                continue
+            lines += ["", f"{point_title(b, records)} - {b.noise} labels, n = {b.n} test failures; {b.power_note}"]
+            lines += [f"  WARNING: {w}" for w in b.warnings]
+            lines.append(to_text(board_table(b).drop(columns=["false alarms per failure"])))
+            lines.append(sentence(b, records))
+            for other in (o for o in mine if o.point == b.point and o.noise != first_noise):
+                top = other.rows.iloc[0]
+                ties = [d for d, same in zip(other.rows["detector"].iloc[1:], other.rows["same_as_best"].iloc[1:]) if same]
+                warn = f" (WARNING: fewer than {FEW_FAILURES} failures)" if other.n < FEW_FAILURES else ""
+                lines.append(f"  with {other.noise} labels: best {top['detector']} {top['k']}/{top['n']}"
+                             f"{'; same: ' + ', '.join(ties) if ties else ''}{warn}")
+        moves = noise_movement(mine)
+        for (st, point), table in moves.items():
+            if st == setting:
+                title = point_title(next(b for b in mine if b.point == point), records)
+                lines.append(f"noise, at {title}: {movement_sentence(table)}")
+    return "\n".join(lines)
+
+
 def write_report(output: Path, title: str, detectors: list[str] | None = None,
                  noises: list[str] | None = None, run_ids: set[str] | None = None,
-                 tolerance: dict | None = None) -> dict:
+                 description: str | None = None, tolerance: dict | None = None) -> dict:
     """Write report.md, results.csv, summary.csv, report.html and PNG plots into ``output``; return paths.
 
     With ``run_ids`` only those runs are reported (records of other configurations left in
-    the same folder, e.g. from an earlier version of the experiment, are ignored).
+    the same folder, e.g. from an earlier version of the experiment, are ignored). The
+    decision section comes first (after the experiment's ``description``); ``decision`` in the
+    result is its terminal form.
     """
+    from logtrial.output.figures import (
+        budget_dots_figure,
+        colours_for,
+        lead_time_figure,
+        operating_curve_figure,
+        pr_figure,
+    )
     from logtrial.running.store import RunStore
 
     store = RunStore(output)
@@ -276,41 +256,120 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
     summary = order_like(summarise(results), detectors or [], noises or [])
     table = headline_table(summary)
     failed = [r for r in records if r.get("status") == "failed"]
+    finished = [r for r in records if r.get("status") == "finished"]
+    det_order = detectors or list(summary["detector"].drop_duplicates())
+    boards = decision_boards(finished, det_order, noises or list(summary["noise"].drop_duplicates()))
     out = Path(output)
     results.sort_values(["dataset", "detector", "noise", "seed"]).to_csv(out / "results.csv", index=False,
                                                                          float_format="%.6g")
     summary.to_csv(out / "summary.csv", index=False, float_format="%.6g")
     first_noise = summary["noise"].iloc[0]
-    # Lead-time and PR plots pool runs: only those of the first dataset / vocabulary / windows / task.
-    axes = ["dataset", "vocabulary", "windows", "task"]
-    same = (results[axes] == summary[axes].iloc[0]).all(axis=1)
-    plotted = [r for r in records if r.get("run_id") in set(results.loc[same, "run_id"])]
-    figs = {"robustness.png": robustness_figure(summary)}
-    if not summary["task"].astype(str).str.contains("name=detect").all():  # lead times exist only when predicting
-        figs["lead_times.png"] = lead_time_figure(plotted, first_noise, list(summary["detector"].drop_duplicates()))
-    figs["pr_curves.png"] = pr_figure(plotted, store, first_noise, list(summary["detector"].drop_duplicates()))
+    budgets = sorted({float(k) for r in finished for k in r.get("at_budget", {})})
+    colours = colours_for(boards, det_order)
+    figs = {}
+    settings = list(dict.fromkeys(b.setting for b in boards))
+    if settings:
+        setting = settings[0]  # pictures show the first setting (dataset, vocabulary, windows, task)
+        in_setting = [r for r in finished if _setting_of(r) == setting]
+        figs["operating_curves.png"] = operating_curve_figure(in_setting, store, boards, setting, budgets, colours)
+        figs["budget_dots.png"] = budget_dots_figure(boards, setting, lambda b: point_title(b, finished, short=True), colours)
+        first = next(b for b in boards if b.setting == setting)
+        if first.task == "predict":  # lead times at the loosest budget (most predicted failures to show)
+            point = str(max((b.point for b in boards if b.point != "policy"), key=float, default="policy"))
+            figs["lead_times.png"] = lead_time_figure(in_setting, first_noise, det_order, first.horizon_h, point)
+        figs["pr_curves.png"] = pr_figure(in_setting, store, first_noise, det_order, colours)
     pngs = {name: _png(f) for name, f in figs.items()}
     noise_section = tolerance_section(records, out, tolerance, detectors)  # empty unless the noise is swept
     for name, blob in pngs.items():
         (out / name).write_bytes(blob)
-    note = ("Each cell: mean over seeds, with the bootstrap interval (averaged over seeds) in brackets. "
-            "Test windows are scored against the true incidents; noise only touches training and "
-            "validation labels.")
-    md = [f"# {title}", "", note, "", to_markdown(table), ""]
+    note = ("Each cell: mean over seeds, with its 95 % interval (averaged over seeds) in brackets: Wilson score "
+            "intervals for shares of failures, bootstrap intervals for the other figures. Test windows are scored "
+            "against the true incidents; noise only touches training and validation labels. Each detector uses "
+            "its own threshold from the experiment's threshold policy here, so alarm rates differ; compare "
+            "detectors in the decision section above.")
+    unbounded = sorted({k for r in finished for k in (r.get("interval_notes") or {})})
+    foot = (f"* no upper bound: in some resamples alarms were raised but no failure caught, so the ratio "
+            f"({', '.join(unbounded)}) is unbounded there; read the alarm counts instead." if unbounded else "")
+    decision_md = decision_markdown(boards, finished)
+    curves_note = ("Operating curves are computed on the test split over every distinct threshold (a few hundred "
+                   "shown): they are for reading; the headline points use thresholds chosen on validation.")
+    intro = [" ".join(str(description).split()), ""] if description else []
+    md = [f"# {title}", ""] + intro + decision_md + ["## All figures at the threshold policy", "", note, "",
+                                             to_markdown(table), ""]
+    if foot:
+        md += [foot, ""]
     if failed:
         md += [f"{len(failed)} run(s) failed:", ""] + [f"- `{r['run_id']}`: {r.get('error', '')}" for r in failed] + [""]
+    md += ["## Pictures", "", curves_note, ""]
     md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs] + noise_section.markdown
     (out / "report.md").write_text("\n".join(md))
-    imgs = "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,{base64.b64encode(b).decode()}">'
-                   f"</figure>" for n, b in pngs.items()) + noise_section.html
-    page = (
-        "<!doctype html><html><head><meta charset='utf-8'><title>" + html.escape(title) + "</title><style>"
-        "body{font-family:sans-serif;margin:2em;color:#222}table{border-collapse:collapse;font-size:13px}"
-        "th,td{border:1px solid #ccc;padding:4px 8px;text-align:left}th{background:#f3f3f3}"
-        "img{max-width:100%}figure{margin:1.5em 0}</style></head><body>"
-        f"<h1>{html.escape(title)}</h1><p>{html.escape(note)}</p>"
-        + table.to_html(index=False, escape=True) + imgs + "</body></html>"
-    )
-    (out / "report.html").write_text(page)
+    (out / "report.html").write_text(_html(title, intro + decision_md, note, foot, table, curves_note, pngs, failed,
+                                             noise_section.html))
     return {"markdown": out / "report.md", "html": out / "report.html", "csv": out / "results.csv",
-            "table": table, "failed": len(failed)}
+            "table": table, "failed": len(failed), "decision": decision_text(boards, finished),
+            "boards": boards, "pictures": list(pngs)}
+
+
+def _setting_of(record: dict) -> str:
+    from logtrial.output.decision import setting_label
+
+    return setting_label(record["config"])
+
+
+def _md_to_html(lines: list[str]) -> str:
+    """The decision section's small Markdown subset (headings, quotes, bullets, pipe tables) as HTML."""
+    parts, table, bullets = [], [], []
+
+    def flush() -> None:
+        if table:
+            head = [c.strip() for c in table[0].strip("|").split("|")]
+            body = [[c.strip() for c in row.strip("|").split("|")] for row in table[2:]]
+            cls = ' class="decision"' if head and head[0] == "rank" else ""
+            parts.append(f"<table{cls}><thead><tr>" + "".join(f"<th>{html.escape(h)}</th>" for h in head)
+                         + "</tr></thead><tbody>" + "".join(
+                             "<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in row) + "</tr>" for row in body)
+                         + "</tbody></table>")
+            table.clear()
+        if bullets:
+            parts.append("<ul>" + "".join(f"<li>{html.escape(b)}</li>" for b in bullets) + "</ul>")
+            bullets.clear()
+
+    for line in (part for block in lines for part in block.split("\n")):
+        if line.startswith("|"):
+            table.append(line)
+            continue
+        if line.startswith("- "):
+            bullets.append(line[2:])
+            continue
+        flush()
+        if line.startswith("#"):
+            level = len(line) - len(line.lstrip("#"))
+            parts.append(f"<h{level}>{html.escape(line[level:].strip())}</h{level}>")
+        elif line.startswith("> "):
+            parts.append(f'<p class="warn">{html.escape(line[2:].replace("**", ""))}</p>')
+        elif line.strip():
+            parts.append(f"<p>{html.escape(line.replace('**', ''))}</p>")
+    flush()
+    return "".join(parts)
+
+
+def _html(title: str, decision_md: list[str], note: str, foot: str, table: pd.DataFrame, curves_note: str,
+          pngs: dict[str, bytes], failed: list[dict], extra: str = "") -> str:
+    """The self-contained HTML page: decision first, then the full table and the pictures (inline PNG)."""
+    imgs = "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,{base64.b64encode(b).decode()}">'
+                   f"<figcaption>{html.escape(n)}</figcaption></figure>" for n, b in pngs.items())
+    fails = ("<p class='warn'>" + html.escape(f"{len(failed)} run(s) failed: ")
+             + html.escape("; ".join(f"{r['run_id']}: {r.get('error', '')}" for r in failed)) + "</p>") if failed else ""
+    return (
+        "<!doctype html><html lang='en'><head><meta charset='utf-8'><title>" + html.escape(title) + "</title>"
+        "<link rel='icon' href='data:,'><style>"
+        "body{font-family:sans-serif;margin:2em;color:#222;max-width:1400px}"
+        "table{border-collapse:collapse;font-size:13px;margin:0.5em 0 1em}"
+        "th,td{border:1px solid #ccc;padding:4px 8px;text-align:left}th{background:#f3f3f3}"
+        ".warn{background:#fff4e5;border-left:4px solid #E69F00;padding:4px 8px}"
+        "img{max-width:100%}figure{margin:1.5em 0}</style></head><body>"
+        f"<h1>{html.escape(title)}</h1>" + _md_to_html(decision_md)
+        + f"<h2>All figures at the threshold policy</h2><p>{html.escape(note)}</p>"
+        + table.to_html(index=False, escape=True) + (f"<p>{html.escape(foot)}</p>" if foot else "") + fails
+        + f"<h2>Pictures</h2><p>{html.escape(curves_note)}</p>" + imgs + extra + "</body></html>"
+    )

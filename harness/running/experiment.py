@@ -16,9 +16,9 @@ from logtrial.errors import ConfigError, LogtrialError
 
 TOP_LEVEL = {
     "experiment", "description", "output", "datasets", "windows", "tasks", "task", "split", "noise", "detectors",
-    "seeds", "threshold", "scoring", "registry", "gate", "vocabulary", "vocabularies", "tolerance",
+    "seeds", "threshold", "scoring", "registry", "gate", "vocabulary", "vocabularies", "budgets", "tolerance",
 }
-SCORING_DEFAULTS = {"cooldown": "1h", "bootstrap": 200, "ci_level": 0.95, "bootstrap_unit": "entity"}
+SCORING_DEFAULTS = {"cooldown": "1h", "bootstrap": 1000, "ci_level": 0.95, "bootstrap_unit": "entity"}
 
 
 @dataclass(frozen=True)
@@ -36,6 +36,7 @@ class RunConfig:
     scoring: dict
     vocabulary: dict = field(default_factory=lambda: {"kind": "templates"})
     dataset_entry: str = ""
+    budgets: tuple[float, ...] = ()
 
     def canonical(self) -> dict:
         """The config as plain JSON-able data, keys sorted on dump (the default vocabulary is left out)."""
@@ -46,6 +47,8 @@ class RunConfig:
         }
         if self.dataset_entry:
             out["dataset_entry"] = self.dataset_entry
+        if self.budgets:
+            out["budgets"] = list(self.budgets)
         if self.vocabulary.get("kind", "templates") != "templates":
             out["vocabulary"] = self.vocabulary
         return out
@@ -247,6 +250,20 @@ def _canonical_detector(raw: Any, where: str) -> dict:
     return out
 
 
+def _canonical_budgets(raw: Any) -> tuple[float, ...]:
+    """Alarm budgets (alarms per week per 100 entities): distinct positive numbers, sorted."""
+    if raw is None:
+        return ()
+    if not isinstance(raw, list):
+        raise ConfigError(f"budgets: expected a list of alarms per week per 100 entities, e.g. [2, 5, 20], got {raw!r}")
+    for i, b in enumerate(raw):
+        if isinstance(b, bool) or not isinstance(b, (int, float)) or not b > 0 or b != b or b == float("inf"):
+            raise ConfigError(f"budgets[{i}]: expected a positive number of alarms per week per 100 entities, got {b!r}")
+    if len(set(map(float, raw))) != len(raw):
+        raise ConfigError(f"budgets: each budget once, got {raw!r}")
+    return tuple(sorted(float(b) for b in raw))
+
+
 def load_experiment(source: str | Path | dict, output: str | Path | None = None) -> Experiment:
     """Validate an experiment file (or dict) and expand its grid into run configs."""
     path = None
@@ -314,6 +331,7 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
     except ConfigError as exc:
         raise ConfigError(f"threshold: {exc}") from None
     threshold = policy.as_dict()
+    budgets = _canonical_budgets(doc.get("budgets"))
     scoring = _canonical_scoring(doc.get("scoring"), "scoring")
     from logtrial.output.gate import gate_settings
 
@@ -327,7 +345,8 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
               enumerate(_as_list(doc.get("vocabularies", doc.get("vocabulary", "templates"))))]
     runs = [
         RunConfig(dataset=d, windows=w, task=t, split=split, noise=n, detector=det, seed=int(s),
-                  threshold=threshold, scoring=scoring, vocabulary=v, dataset_entry=fingerprints[d])
+                  threshold=threshold, scoring=scoring, vocabulary=v, dataset_entry=fingerprints[d],
+                  budgets=budgets)
         for d, v, w, t, n, det, s in itertools.product(datasets, vocabs, windows, tasks, noises, dets, seeds)
     ]
     out = Path(output) if output else Path(doc.get("output") or (base / f"{name}-out"))

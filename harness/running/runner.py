@@ -24,7 +24,8 @@ from logtrial.detectors.base import Detector
 from logtrial.detectors.registry import create
 from logtrial.errors import DataError
 from logtrial.evaluation.run_figures import evaluate_run, window_metrics_safe
-from logtrial.evaluation.thresholds import ThresholdChoice, choose_threshold, load_policy
+from logtrial.evaluation.curves import CURVE_NOTE, operating_curve
+from logtrial.evaluation.thresholds import ThresholdChoice, budget_key, budget_policy, choose_threshold, load_policy
 from logtrial.labels.noise import load_noise, replay
 from logtrial.labels.truth import truth_incidents
 from logtrial.running.experiment import Experiment, RunConfig, describe_failure
@@ -154,7 +155,10 @@ class Runner:
         report = self.evaluate(run, data, prep, fit.test_scores, choice.threshold)
         # Also score the test windows against the reported (noisy) labels, to show how noise distorts scores.
         as_reported = window_metrics_safe(rep_labels[prep.split.test], fit.test_scores, choice.threshold)
-        self._last_scores[run.run_id] = score_table(prep, fit, val_labels)
+        at_budget = self.evaluate_budgets(run, data, prep, fit, val_labels)
+        curve = self.curve(run, data, prep, fit.test_scores)
+        self._last_scores[run.run_id] = pd.concat([score_table(prep, fit, val_labels), curve_rows(curve)],
+                                                  ignore_index=True)
         return {
             "run_id": run.run_id,
             "status": "finished",
@@ -168,6 +172,10 @@ class Runner:
             "metrics": report["metrics"],
             "intervals": report["intervals"],
             "lead_times_h": report["lead_times_h"],
+            "outcomes": report["outcomes"],
+            "interval_notes": report.get("interval_notes", {}),
+            "at_budget": at_budget,
+            "curve": {"points": int(len(curve)), "failures": int(curve.attrs["failures"]), "note": CURVE_NOTE},
             "metrics_vs_reported_labels": as_reported,
             "detector_info": fit.info,
             "warnings": list(prep.split.warnings),
@@ -215,9 +223,27 @@ class Runner:
         cooldown = pd.Timedelta(run.scoring["cooldown"])
         return choose_threshold(load_policy(run.threshold), val_scores, val_labels, meta.iloc[prep.split.val], cooldown)
 
-    def evaluate(self, run: RunConfig, data: DatasetData, prep: Prepared, test_scores: np.ndarray,
-                 threshold: float) -> dict:
-        """Window and incident figures of the test windows against the true incidents."""
+    def evaluate_budgets(self, run: RunConfig, data: DatasetData, prep: Prepared, fit: Fit,
+                         val_labels: np.ndarray) -> dict:
+        """Each alarm budget's threshold (chosen on validation) and its test figures, reusing the scores."""
+        out = {}
+        meta = prep.windows.meta.iloc[prep.split.val]
+        for b in run.budgets:
+            choice = choose_threshold(budget_policy(b), fit.val_scores, val_labels, meta,
+                                      pd.Timedelta(run.scoring["cooldown"]))
+            rep = self.evaluate(run, data, prep, fit.test_scores, choice.threshold)
+            out[budget_key(b)] = {"threshold": {"value": float(choice.threshold), **choice.as_dict()}, **rep}
+        return out
+
+    def curve(self, run: RunConfig, data: DatasetData, prep: Prepared, test_scores: np.ndarray) -> pd.DataFrame:
+        """The test-side operating curve (for reading; headline points use validation-chosen thresholds)."""
+        lo, hi = self.test_span(prep)
+        return operating_curve(prep.windows.meta.iloc[prep.split.test].reset_index(drop=True), test_scores,
+                               data.truth, prep.horizon, pd.Timedelta(run.scoring["cooldown"]), span=(lo, hi))
+
+    @staticmethod
+    def test_span(prep: Prepared) -> tuple[pd.Timestamp, pd.Timestamp]:
+        """Where test failures are counted: from the test start plus the horizon to the test end."""
         meta, split = prep.windows.meta, prep.split
         if "test" in split.ranges:
             lo, hi = split.ranges["test"]
@@ -226,6 +252,13 @@ class Runner:
         # Count only failures whose whole horizon lies in the test span, so that no failure's
         # warning time is cut short by the split boundary (alarms still match every incident).
         count_from = lo + prep.horizon if prep.horizon is not None and lo + prep.horizon < hi else lo
+        return count_from, hi
+
+    def evaluate(self, run: RunConfig, data: DatasetData, prep: Prepared, test_scores: np.ndarray,
+                 threshold: float) -> dict:
+        """Window and incident figures of the test windows against the true incidents."""
+        meta, split = prep.windows.meta, prep.split
+        count_from, hi = self.test_span(prep)
         return evaluate_run(
             meta=meta.iloc[split.test].reset_index(drop=True), scores=test_scores,
             labels=prep.truth_labels[split.test], threshold=threshold, incidents=data.truth, horizon=prep.horizon,
@@ -272,6 +305,18 @@ def score_table(prep: Prepared, fit: Fit, val_labels: np.ndarray) -> pd.DataFram
         "part": np.r_[np.full(len(split.val), "val"), np.full(len(split.test), "test")],
         "score": np.r_[fit.val_scores, fit.test_scores].astype(np.float64),
         "label": np.r_[val_labels, prep.truth_labels[split.test]].astype(np.int8),
+    })
+
+
+def curve_rows(curve: pd.DataFrame) -> pd.DataFrame:
+    """Operating-curve points as rows of the score table (part "curve", the threshold in ``score``)."""
+    return pd.DataFrame({
+        "window": np.full(len(curve), -1, dtype=np.int64), "part": "curve",
+        "score": curve["threshold"].to_numpy(np.float64), "label": np.full(len(curve), -1, dtype=np.int8),
+        "curve_alarms_per_week_per_100": curve["alarms_per_week_per_100_entities"].to_numpy(np.float64),
+        "curve_caught": curve["caught"].to_numpy(np.int64),
+        "curve_failures": np.full(len(curve), int(curve.attrs["failures"]), dtype=np.int64),
+        "curve_lead_median_h": curve["lead_time_median_h"].to_numpy(np.float64),
     })
 
 
