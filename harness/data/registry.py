@@ -183,6 +183,11 @@ class Labels(_Strict):
             raise ValueError(f"must not be negative, got {v!r}")
         return v
 
+    @field_validator("file")
+    @classmethod
+    def _inside(cls, v: str | None) -> str | None:
+        return inside_folder(v)
+
     @model_validator(mode="after")
     def _file_when_needed(self) -> "Labels":
         if self.scheme in ("sessions", "incidents") and not self.file:
@@ -225,6 +230,11 @@ class Truth(_Strict):
     template: str = "EventTemplate"
     content: str = "Content"
 
+    @field_validator("file", "templates")
+    @classmethod
+    def _inside(cls, v: str | None) -> str | None:
+        return inside_folder(v)
+
 
 class Entry(_Strict):
     """One dataset of the registry."""
@@ -258,6 +268,16 @@ class Entry(_Strict):
         return self
 
 
+def inside_folder(path: str | None) -> str | None:
+    """A data path of an entry, refused unless it is relative and stays inside the dataset folder."""
+    if path is None:
+        return None
+    parts = path.replace("\\", "/").split("/")
+    if not path or path.startswith(("/", "\\", "~")) or re.match(r"^[A-Za-z]:", path) or ".." in parts:
+        raise ValueError(f"{path!r} must be a relative path inside the dataset folder (no '..', not absolute)")
+    return path
+
+
 def _compile(rx: str) -> re.Pattern[str]:
     try:
         return re.compile(rx)
@@ -278,6 +298,25 @@ def _describe(err: ValidationError) -> str:
     return "; ".join(parts)
 
 
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """Safe YAML loader that refuses a key repeated in one mapping (YAML would keep the last silently)."""
+
+    def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict:  # type: ignore[override]
+        seen: dict[Any, int] = {}
+        for key_node, _ in node.value:
+            key = self.construct_object(key_node, deep=True)
+            try:
+                first = seen.get(key)
+            except TypeError:
+                continue  # an unhashable key fails in the base constructor with its own message
+            if first is not None:
+                raise yaml.constructor.ConstructorError(
+                    None, None, f"duplicate key {key!r} (first at line {first}); each key may appear once",
+                    key_node.start_mark)
+            seen[key] = key_node.start_mark.line + 1
+        return super().construct_mapping(node, deep=deep)
+
+
 def read_yaml(path: Path) -> Any:
     """Parse a YAML file safely, turning syntax errors into a ConfigError with file and line."""
     try:
@@ -287,7 +326,7 @@ def read_yaml(path: Path) -> Any:
     except UnicodeDecodeError as exc:
         raise ConfigError(f"{path}: not valid UTF-8 text (byte {exc.start})") from None
     try:
-        return yaml.safe_load(text)
+        return yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - a SafeLoader subclass
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark else ""
@@ -306,9 +345,26 @@ def parse_entry(name: str, raw: Any, origin: str, defaults: dict | None = None) 
         raise ConfigError(f"{origin}: dataset '{name}': {_describe(exc)}") from None
 
 
+USER_REGISTRY = "registry.yaml"
+
+
+def user_registry_path(home: Path | None = None) -> Path:
+    """The registry file that `logtrial ingest --name` writes under the data home."""
+    return Path(home if home is not None else home_dir()) / USER_REGISTRY
+
+
 def load_registry(paths: list[Path] | None = None) -> dict[str, Entry]:
-    """Load the built-in registry plus any user registry files (later files override names)."""
-    files = [Path(os.environ.get("LOGTRIAL_REGISTRY", DEFAULT_REGISTRY))] + [Path(p) for p in paths or []]
+    """Load the built-in registry, the data home's user registry (if any) and extra registry files."""
+    files = [Path(os.environ.get("LOGTRIAL_REGISTRY", DEFAULT_REGISTRY))]
+    user = user_registry_path()
+    if user.is_file():
+        files.append(user)
+    files += [Path(p) for p in paths or []]
+    return _load_files(files)
+
+
+def _load_files(files: list[Path]) -> dict[str, Entry]:
+    """Entries of several registry files; a later file's entry replaces an earlier one of the same name."""
     entries: dict[str, Entry] = {}
     for path in files:
         doc = read_yaml(path)
@@ -322,6 +378,51 @@ def load_registry(paths: list[Path] | None = None) -> dict[str, Entry]:
                 raise ConfigError(f"{path}: dataset name {name!r} must be lower-case letters, digits, '.', '_' or '-'")
             entries[str(name)] = parse_entry(str(name), raw, str(path), defaults)
     return entries
+
+
+def register_local(name: str, log: Path, format_file: Path, incidents: Path | None = None,
+                   home: Path | None = None) -> tuple[Entry, Path]:
+    """Write (or replace) a user registry entry for local files so experiments can name it; return it and the file."""
+    if not re.fullmatch(r"[a-z0-9][a-z0-9._-]*", name or "") or name in (".", ".."):
+        raise ConfigError(f"--name {name!r}: expected lower-case letters, digits, '.', '_' or '-' "
+                          "(starting with a letter or digit)")
+    builtin = load_registry_file(Path(os.environ.get("LOGTRIAL_REGISTRY", DEFAULT_REGISTRY)))
+    if name in builtin:
+        raise ConfigError(f"--name {name!r}: a built-in dataset has that name; choose another")
+    for what, p in (("--file", log), ("--format", format_file), ("--incidents", incidents)):
+        if p is not None and not Path(p).is_file():
+            raise ConfigError(f"{what} {p}: file not found")
+    fmt = format_from_file(Path(format_file))
+    miner = miner_from_file(Path(format_file))
+    log = Path(log).resolve()
+    log_name = log.name if log.name != "incidents.csv" else f"log-{log.name}"
+    raw: dict[str, Any] = {
+        "system": f"{name} (local files)",
+        "description": f"registered by `logtrial ingest --name {name}` from {log}",
+        "sources": [{"file": log_name, "url": log.as_uri()}],
+        "logs": [log_name],
+        "format": fmt.model_dump(mode="json", exclude_defaults=True),
+        "miner": miner.model_dump(mode="json", exclude_defaults=True),
+    }
+    if incidents is not None:
+        raw["sources"].append({"file": "incidents.csv", "url": Path(incidents).resolve().as_uri()})
+        raw["labels"] = {"scheme": "incidents", "file": "incidents.csv"}
+    path = user_registry_path(home)
+    doc = read_yaml(path) if path.is_file() else None
+    doc = doc if isinstance(doc, dict) and isinstance(doc.get("datasets"), dict) else {"datasets": {}}
+    doc["datasets"][name] = raw
+    entry = parse_entry(name, raw, str(path))
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    tmp.write_text("# Written by `logtrial ingest --name`: local datasets, one entry per name.\n"
+                   + yaml.safe_dump(doc, sort_keys=False, allow_unicode=True), encoding="utf-8")
+    os.replace(tmp, path)
+    return entry, path
+
+
+def load_registry_file(path: Path) -> dict[str, Entry]:
+    """The entries of one registry file."""
+    return _load_files([Path(path)])
 
 
 def get_entry(name: str, registry: dict[str, Entry]) -> Entry:
