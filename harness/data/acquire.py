@@ -427,6 +427,20 @@ def local_origin(src: Source) -> Path | None:
     return Path(urllib.request.url2pathname(urllib.parse.urlparse(src.url).path))
 
 
+def local_content(entry: Entry, home: Path | None = None) -> dict[str, str]:
+    """sha256 of each local source's current file (the lock's value while its size and mtime are unchanged)."""
+    rec = read_lock(Path(home) if home is not None else home_dir()).get(entry.name, {})
+    out: dict[str, str] = {}
+    for src in entry.sources:
+        origin = local_origin(src)
+        if origin is None or not origin.is_file():
+            continue
+        got, st = rec.get(src.file) or {}, origin.stat()
+        same = got.get("origin_size") == st.st_size and got.get("origin_mtime_ns") == st.st_mtime_ns
+        out[src.file] = str(got["sha256"]) if same and got.get("sha256") else sha256_file(origin)
+    return out
+
+
 def _origin_stamp(path: Path) -> dict[str, int]:
     st = path.stat()
     return {"origin_size": st.st_size, "origin_mtime_ns": st.st_mtime_ns}

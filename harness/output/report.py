@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 from logtrial.errors import DataError
 from logtrial.running.experiment import vocabulary_label
+from logtrial.windowing.durations import shorten_durations
 
 # Headline figures: (record key, column title).
 HEADLINE = [
@@ -45,8 +46,8 @@ def load_results(records: list[dict]) -> pd.DataFrame:
         cfg = r["config"]
         row = {
             "run_id": r["run_id"], "dataset": cfg["dataset"],
-            "windows": " ".join(f"{k}={v}" for k, v in cfg["windows"].items()),
-            "task": " ".join(f"{k}={v}" for k, v in cfg["task"].items()),
+            "windows": shorten_durations(" ".join(f"{k}={v}" for k, v in cfg["windows"].items())),
+            "task": shorten_durations(" ".join(f"{k}={v}" for k, v in cfg["task"].items())),
             "vocabulary": vocabulary_label(cfg.get("vocabulary")),
             "noise": cfg["noise"].get("name", "clean"), "noise_level": cfg["noise"].get("level"),
             "detector": cfg["detector"].get("label") or cfg["detector"]["name"], "seed": cfg["seed"],

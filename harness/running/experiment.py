@@ -13,6 +13,7 @@ import pandas as pd
 from logtrial import __version__
 from logtrial.data.registry import read_yaml
 from logtrial.errors import ConfigError, LogtrialError
+from logtrial.windowing.durations import format_duration
 
 TOP_LEVEL = {
     "experiment", "description", "output", "datasets", "windows", "tasks", "task", "split", "noise", "detectors",
@@ -100,20 +101,6 @@ def _unknown_field(where: str, field_name: str, allowed: Any) -> ConfigError:
     """ConfigError for a field that is not allowed, with a suggestion when it looks misspelt."""
     allowed = sorted(allowed)
     return ConfigError(f"{where}{field_name}: unknown field (allowed: {', '.join(allowed)}).{did_you_mean(field_name, allowed)}")
-
-
-def format_duration(value: Any) -> str:
-    """A duration written the way users write it: '1h', '15min', '2d', '90s' (not '0 days 01:00:00')."""
-    td = pd.Timedelta(value)
-    ns = int(td.value)
-    if ns == 0:
-        return "0s"
-    sign, ns = ("-", -ns) if ns < 0 else ("", ns)
-    for unit, size in (("d", 86_400 * 10**9), ("h", 3_600 * 10**9), ("min", 60 * 10**9), ("s", 10**9),
-                       ("ms", 10**6), ("us", 10**3)):
-        if ns % size == 0:
-            return f"{sign}{ns // size}{unit}"
-    return f"{sign}{ns}ns"
 
 
 def _text_duration(value: Any, where: str) -> None:
@@ -248,8 +235,17 @@ _ENTRY_FIELDS = {"sources", "logs", "format", "labels", "miner", "generator"}
 
 
 def entry_fingerprint(entry) -> str:
-    """Hash of the registry fields that define a dataset's data, so that editing them changes run ids."""
-    blob = json.dumps(entry.model_dump(mode="json", include=_ENTRY_FIELDS), sort_keys=True)
+    """Hash of the registry fields that define a dataset's data, so that editing them changes run ids.
+
+    Local sources (your own files, tracked by content) add their sha256: editing the file changes run ids.
+    """
+    from logtrial.data.acquire import local_content
+
+    doc = entry.model_dump(mode="json", include=_ENTRY_FIELDS)
+    content = local_content(entry)
+    if content:
+        doc["local_content"] = content
+    blob = json.dumps(doc, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
 
