@@ -245,6 +245,7 @@ def cmd_gate(args: argparse.Namespace) -> int:
 
                 shutil.rmtree(out, ignore_errors=True)  # the temporary fresh run is not kept
         where = out if args.out else "a temporary run (removed; pass --out DIR to keep it)"
+    result = compare(reference, fresh, metrics, tol, rel)
     failed = 0 if args.fresh else counts["failed"]
     print(f"gate {exp.name}: reference {reference_dir / 'results.csv'}  vs  fresh {where}")
     print(format_table(result, only_moved=not args.all))
