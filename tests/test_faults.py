@@ -245,3 +245,12 @@ def test_gate_takes_registry_and_removes_its_temporary_run(tmp_path: Path, home:
     assert main(["gate", str(path), "--registry", reg, "--mirror", str(tmp_path), "--quiet"]) == 0
     assert "PASS" in capsys.readouterr().out
     assert not list(temp_root.glob("logtrial-gate-*"))
+
+
+def test_misspelt_registry_field_gets_a_suggestion(tmp_path: Path) -> None:
+    from logtrial.data.registry import load_registry
+
+    reg = tmp_path / "reg.yaml"
+    reg.write_text(SMALL.replace("    logs: [fleet.log]", "    logz: [fleet.log]"))
+    with pytest.raises(ConfigError, match=r"logz: unknown field \(did you mean `logs`\?\)"):
+        load_registry([reg])

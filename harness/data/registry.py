@@ -285,6 +285,16 @@ def _compile(rx: str) -> re.Pattern[str]:
         raise ValueError(f"invalid regular expression {rx!r}: {exc}") from None
 
 
+def _field_hint(name: str) -> str:
+    """' (did you mean `x`?)' when an unknown registry field is close to a known one."""
+    import difflib
+
+    known = {f for model in (Entry, Source, LineFormat, Labels, Miner, Truth, Timestamp, Grouping, Tag)
+             for f in model.model_fields}
+    close = difflib.get_close_matches(name, sorted(known), n=1, cutoff=0.7)
+    return f" (did you mean `{close[0]}`?)" if close else ""
+
+
 def _describe(err: ValidationError) -> str:
     parts = []
     for e in err.errors():
@@ -293,7 +303,7 @@ def _describe(err: ValidationError) -> str:
         if e["type"] == "missing":
             msg = "required field is missing"
         elif e["type"] == "extra_forbidden":
-            msg = "unknown field"
+            msg = "unknown field" + _field_hint(str(e["loc"][-1]))
         parts.append(f"{loc}: {msg}")
     return "; ".join(parts)
 
