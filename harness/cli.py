@@ -28,12 +28,13 @@ def _registry(args: argparse.Namespace):
 
 def cmd_datasets(args: argparse.Namespace) -> int:
     """List the registry and what is on disk."""
-    from logtrial.data.acquire import status
+    from logtrial.data.acquire import partial_downloads, status
     from logtrial.data.registry import home_dir
 
     reg = _registry(args)
     home = home_dir()
     rows = []
+    parts: list[str] = []
     for name, e in sorted(reg.items()):
         lines = e.expected.get("lines")
         rows.append(
@@ -46,7 +47,11 @@ def cmd_datasets(args: argparse.Namespace) -> int:
                 "on disk": "generated on demand" if e.generator is not None else status(e, home),
             }
         )
+        parts += [f"  {path} ({size / 2**20:.1f} MiB): kept so that `logtrial fetch {name}` resumes it; "
+                  "delete it to start over" for path, size in partial_downloads(e, home)]
     print(_table(rows, ["name", "system", "lines", "labels", "licence", "on disk"]))
+    if parts:
+        print("\npartial downloads:\n" + "\n".join(parts))
     print(f"\ndata folder: {home}  (set LOGTRIAL_HOME to move it)")
     return 0
 

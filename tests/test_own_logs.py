@@ -227,3 +227,16 @@ def test_failed_local_copy_leaves_no_part_file(tmp_path: Path, home: Path, monke
     assert "No space left on device" in err and "partial copy was removed" in err and "Traceback" not in err
     assert not list((home / "downloads" / "mine").glob("*.part"))
     monkeypatch.setattr(acquire, "_pump", real)
+
+
+def test_partial_downloads_are_reported(tmp_path: Path, home: Path, capsys) -> None:
+    # A .part file is kept only for an https download that can resume; `datasets` says where and how big.
+    reg = tmp_path / "reg.yaml"
+    reg.write_text("datasets:\n  remote:\n    system: s\n    sources: [{file: a.log, url: 'https://example.invalid/a.log'}]\n"
+                   "    logs: [a.log]\n    format: {regex: '^(?P<content>.*)$'}\n")
+    part = home / "downloads" / "remote" / "a.log.part"
+    part.parent.mkdir(parents=True)
+    part.write_bytes(b"x" * 2**20)
+    assert main(["datasets", "--registry", str(reg)]) == 0
+    out = capsys.readouterr().out
+    assert f"{part} (1.0 MiB): kept so that `logtrial fetch remote` resumes it" in out

@@ -613,6 +613,14 @@ def verify(entry: Entry, home: Path | None = None) -> dict[str, str]:
     return out
 
 
+def partial_downloads(entry: Entry, home: Path | None = None) -> list[tuple[Path, int]]:
+    """`.part` files of a dataset's downloads with their sizes (kept so that an https download can resume)."""
+    downloads = (Path(home) if home is not None else home_dir()) / "downloads" / entry.name
+    if not downloads.is_dir():
+        return []
+    return [(p, p.stat().st_size) for p in sorted(downloads.glob("*.part")) if p.is_file()]
+
+
 def status(entry: Entry, home: Path | None = None) -> str:
     """Cheap on-disk status without hashing: 'fetched', 'partial' or 'missing'."""
     home = Path(home) if home is not None else home_dir()
