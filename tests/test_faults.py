@@ -75,7 +75,8 @@ def test_data_paths_outside_the_dataset_folder_are_refused(tmp_path: Path, field
     reg = tmp_path / "reg.yaml"
     body = SMALL.replace("    labels: {scheme: incidents, file: incidents.csv}\n", "")
     reg.write_text(body + f"    {field}: {value}\n")
-    with pytest.raises(ConfigError, match=rf"dataset 'relay-tiny': {field}\.(file|templates): .*inside the dataset folder"):
+    pattern = rf"dataset 'relay-tiny': {field}\.(file|templates): .*inside the dataset folder"
+    with pytest.raises(ConfigError, match=pattern):
         load_registry([reg])
 
 

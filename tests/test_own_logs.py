@@ -232,7 +232,8 @@ def test_failed_local_copy_leaves_no_part_file(tmp_path: Path, home: Path, monke
 def test_partial_downloads_are_reported(tmp_path: Path, home: Path, capsys) -> None:
     # A .part file is kept only for an https download that can resume; `datasets` says where and how big.
     reg = tmp_path / "reg.yaml"
-    reg.write_text("datasets:\n  remote:\n    system: s\n    sources: [{file: a.log, url: 'https://example.invalid/a.log'}]\n"
+    reg.write_text("datasets:\n  remote:\n    system: s\n"
+                   "    sources: [{file: a.log, url: 'https://example.invalid/a.log'}]\n"
                    "    logs: [a.log]\n    format: {regex: '^(?P<content>.*)$'}\n")
     part = home / "downloads" / "remote" / "a.log.part"
     part.parent.mkdir(parents=True)

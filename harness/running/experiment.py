@@ -100,7 +100,8 @@ def did_you_mean(word: str, known: Any) -> str:
 def _unknown_field(where: str, field_name: str, allowed: Any) -> ConfigError:
     """ConfigError for a field that is not allowed, with a suggestion when it looks misspelt."""
     allowed = sorted(allowed)
-    return ConfigError(f"{where}{field_name}: unknown field (allowed: {', '.join(allowed)}).{did_you_mean(field_name, allowed)}")
+    hint = did_you_mean(field_name, allowed)
+    return ConfigError(f"{where}{field_name}: unknown field (allowed: {', '.join(allowed)}).{hint}")
 
 
 def _text_duration(value: Any, where: str) -> None:

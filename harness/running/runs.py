@@ -171,9 +171,15 @@ def _run_locked(experiment: Experiment, home: Path | str, *, progress: bool, mir
     _say(progress, f"{experiment.name}: {len(todo)} runs, {done_before} already finished, {len(pending)} to run")
     if pending and not isinstance(home, str):
         check_datasets(experiment, list(dict.fromkeys(r.dataset for r in pending)), Path(home), mirror, progress)
-    tracker = Tracker(experiment.output, experiment.name) if track else None
-    if tracker is not None:
-        closed, added = tracker.reconcile(store, [r.run_id for r in todo])
+    tracker = None
+    if track:
+        try:
+            tracker = Tracker(experiment.output, experiment.name)
+            closed, added = tracker.reconcile(store, [r.run_id for r in todo])
+        except Exception as exc:  # noqa: BLE001 - a broken or full MLflow store: say so in one line
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise DataError(f"{experiment.output / 'mlflow.db'}: cannot open the MLflow store ({first}); "
+                            "free space or fix permissions, or run with --no-track") from None
         if closed or added:
             _say(progress, f"tracking: closed {closed} run(s) left RUNNING by an interrupted grid, "
                            f"added {added} recorded run(s) missing from MLflow")
