@@ -135,9 +135,14 @@ def _ingest_and_register(args: argparse.Namespace, home: Path, opts: dict) -> in
     res = fetch(entry, home=home, progress=True)
     for note in res.notes:
         print(f"{entry.name}: {note}")
-    from logtrial.data.acquire import log_files
+    from logtrial.data.acquire import log_files, user_paths
+    from logtrial.errors import DataError
 
-    table = ingest_files(entry.name, log_files(entry, res.path), entry.format, entry.miner, home / "tables", **opts)
+    try:
+        table = ingest_files(entry.name, log_files(entry, res.path), entry.format, entry.miner, home / "tables",
+                             **opts)
+    except DataError as exc:  # name the user's own file, not the copy in the data home
+        raise DataError(user_paths(str(exc), entry, res.path)) from None
     _print_ingest(table, entry.name)
     print(f"  registered dataset '{entry.name}' in {where}; name it in an experiment: datasets: [{entry.name}]")
     if not args.incidents:

@@ -241,3 +241,11 @@ def test_partial_downloads_are_reported(tmp_path: Path, home: Path, capsys) -> N
     assert main(["datasets", "--registry", str(reg)]) == 0
     out = capsys.readouterr().out
     assert f"{part} (1.0 MiB): kept so that `logtrial fetch remote` resumes it" in out
+
+
+def test_format_errors_name_the_users_log_not_the_copy(tmp_path: Path, home: Path, capsys) -> None:
+    log, fmt, inc = _write_own_files(tmp_path / "mine")
+    fmt.write_text("regex: '^(?P<ts>\\\\d{8}) (?P<content>.*)$'\n")
+    assert _register(log, fmt, inc) == 1
+    err = capsys.readouterr().err
+    assert f"{log}: no line matched the format" in err and str(home) not in err

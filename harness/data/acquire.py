@@ -441,6 +441,15 @@ def local_content(entry: Entry, home: Path | None = None) -> dict[str, str]:
     return out
 
 
+def user_paths(message: str, entry: Entry, folder: Path) -> str:
+    """A message with the data home's copies of local sources replaced by the user's own file paths."""
+    for src in entry.sources:
+        origin = local_origin(src)
+        if origin is not None:
+            message = message.replace(str(Path(folder) / src.file), str(origin))
+    return message
+
+
 def _origin_stamp(path: Path) -> dict[str, int]:
     st = path.stat()
     return {"origin_size": st.st_size, "origin_mtime_ns": st.st_mtime_ns}

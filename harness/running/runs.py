@@ -96,7 +96,7 @@ def output_lock(output: Path, progress: bool = True) -> Iterator[None]:
 def check_datasets(experiment: Experiment, names: list[str], home: Path, mirror: Path | None,
                    progress: bool) -> None:
     """Acquire, ingest and read the truth of each dataset once before the grid; a data error stops it here."""
-    from logtrial.data.acquire import fetch, local_origin, log_files
+    from logtrial.data.acquire import fetch, local_origin, log_files, user_paths
     from logtrial.data.ingest import ingest_files, read_events
     from logtrial.data.registry import get_entry, load_registry
     from logtrial.labels.incidents import read_incidents
@@ -120,11 +120,7 @@ def check_datasets(experiment: Experiment, names: list[str], home: Path, mirror:
                                  home / "tables", progress=progress)
             truth_incidents(entry, read_events(table.events), folder)
         except DataError as exc:
-            msg = str(exc)
-            for src in entry.sources:
-                origin = local_origin(src)
-                if origin is not None and folder is not None:
-                    msg = msg.replace(str(folder / src.file), str(origin))
+            msg = str(exc) if folder is None else user_paths(str(exc), entry, folder)
             raise DataError(f"dataset '{name}': {msg.removeprefix(f'dataset {name!r}: ')}; "
                             "no run was started (fix it and run again)") from None
 
