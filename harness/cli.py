@@ -8,7 +8,7 @@ import sys
 from pathlib import Path
 
 from logtrial import __version__
-from logtrial.errors import ConfigError, LogtrialError
+from logtrial.errors import ConfigError, DataError, LogtrialError
 
 
 def _table(rows: list[dict], columns: list[str]) -> str:
@@ -118,7 +118,7 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
 def _ingest_and_register(args: argparse.Namespace, home: Path, opts: dict) -> int:
     """`ingest --file LOG --format FMT [--incidents CSV] --name NAME`: a dataset experiments can name."""
-    from logtrial.data.acquire import fetch
+    from logtrial.data.acquire import fetch, log_files, user_paths
     from logtrial.data.ingest import ingest_files
     from logtrial.data.registry import register_local
     from logtrial.labels.incidents import read_incidents
@@ -135,9 +135,6 @@ def _ingest_and_register(args: argparse.Namespace, home: Path, opts: dict) -> in
     res = fetch(entry, home=home, progress=True)
     for note in res.notes:
         print(f"{entry.name}: {note}")
-    from logtrial.data.acquire import log_files, user_paths
-    from logtrial.errors import DataError
-
     try:
         table = ingest_files(entry.name, log_files(entry, res.path), entry.format, entry.miner, home / "tables",
                              **opts)
