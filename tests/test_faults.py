@@ -255,3 +255,14 @@ def test_misspelt_registry_field_gets_a_suggestion(tmp_path: Path) -> None:
     reg.write_text(SMALL.replace("    logs: [fleet.log]", "    logz: [fleet.log]"))
     with pytest.raises(ConfigError, match=r"logz: unknown field \(did you mean `logs`\?\)"):
         load_registry([reg])
+
+
+def test_unitless_label_gap_is_refused(tmp_path: Path) -> None:
+    # pandas reads '60' as 60 nanoseconds: the registry refuses it instead.
+    from logtrial.data.registry import load_registry
+
+    reg = tmp_path / "reg.yaml"
+    reg.write_text(SMALL.replace("labels: {scheme: incidents, file: incidents.csv}",
+                                 "labels: {scheme: inline, gap: '60'}"))
+    with pytest.raises(ConfigError, match=r"labels.gap: '60' has no unit"):
+        load_registry([reg])

@@ -175,6 +175,8 @@ class Labels(_Strict):
     def _duration(cls, v: str) -> str:
         import pandas as pd
 
+        if v.strip().lstrip("+-").replace(".", "", 1).isdigit():
+            raise ValueError(f"{v!r} has no unit; write a duration with its unit such as '60s' or '1h'")
         try:
             td = pd.Timedelta(v)
         except (ValueError, TypeError):
