@@ -249,3 +249,27 @@ def test_format_errors_name_the_users_log_not_the_copy(tmp_path: Path, home: Pat
     assert _register(log, fmt, inc) == 1
     err = capsys.readouterr().err
     assert f"{log}: no line matched the format" in err and str(home) not in err
+
+
+def test_inline_dataset_in_the_experiment_runs_without_an_ingest_step(tmp_path: Path, home: Path, capsys) -> None:
+    log, fmt, inc = _write_own_files(tmp_path / "mine", n=2000)
+    exp = tmp_path / "exp.yaml"
+    exp.write_text("experiment: e\noutput: out\n"
+                   "datasets: [{name: inline-app, file: mine/app.log, format: mine/fmt.yaml, "
+                   "incidents: mine/incidents.csv}]\n"
+                   "windows: [{kind: time, size: 1h}]\ntask: {name: detect}\ndetectors: [rate_rule]\n"
+                   "scoring: {bootstrap: 10}\n")
+    from logtrial.running.experiment import load_experiment
+
+    first = load_experiment(exp)
+    stamp = (home / "registry.yaml").stat().st_mtime_ns
+    again = load_experiment(exp)  # loading again leaves the registry file alone
+    assert (home / "registry.yaml").stat().st_mtime_ns == stamp
+    assert [r.run_id for r in first.runs] == [r.run_id for r in again.runs]
+    assert main(["run", str(exp), "--no-track"]) in (0, 1)  # tiny data: the run may fail, but it runs
+    err = capsys.readouterr().err
+    assert "unknown dataset" not in err and "[1/1] inline-app rate_rule" in err
+    bad = tmp_path / "bad.yaml"
+    bad.write_text(exp.read_text().replace("file: mine/app.log", "fil: mine/app.log"))
+    assert main(["run", str(bad)]) == 2
+    assert "datasets[0].fil: unknown field" in capsys.readouterr().err

@@ -393,15 +393,21 @@ def _load_files(files: list[Path]) -> dict[str, Entry]:
 
 
 def register_local(name: str, log: Path, format_file: Path, incidents: Path | None = None,
-                   home: Path | None = None) -> tuple[Entry, Path]:
-    """Write (or replace) a user registry entry for local files so experiments can name it; return it and the file."""
-    if not re.fullmatch(r"[a-z0-9][a-z0-9._-]*", name or "") or name in (".", ".."):
-        raise ConfigError(f"--name {name!r}: expected lower-case letters, digits, '.', '_' or '-' "
+                   home: Path | None = None, fields: tuple[str, str, str, str] = (
+                       "--name", "--file", "--format", "--incidents"),
+                   how: str = "`logtrial ingest --name`") -> tuple[Entry, Path]:
+    """Write (or replace) a user registry entry for local files so experiments can name it; return it and the file.
+
+    ``fields`` names the options (or YAML fields) the values came from, for error messages;
+    the registry file is left untouched when the entry is already there unchanged.
+    """
+    if not isinstance(name, str) or not re.fullmatch(r"[a-z0-9][a-z0-9._-]*", name) or name in (".", ".."):
+        raise ConfigError(f"{fields[0]} {name!r}: expected lower-case letters, digits, '.', '_' or '-' "
                           "(starting with a letter or digit)")
     builtin = load_registry_file(Path(os.environ.get("LOGTRIAL_REGISTRY", DEFAULT_REGISTRY)))
     if name in builtin:
-        raise ConfigError(f"--name {name!r}: a built-in dataset has that name; choose another")
-    for what, p in (("--file", log), ("--format", format_file), ("--incidents", incidents)):
+        raise ConfigError(f"{fields[0]} {name!r}: a built-in dataset has that name; choose another")
+    for what, p in zip(fields[1:], (log, format_file, incidents)):
         if p is not None and not Path(p).is_file():
             raise ConfigError(f"{what} {p}: file not found")
     fmt = format_from_file(Path(format_file))
@@ -410,7 +416,7 @@ def register_local(name: str, log: Path, format_file: Path, incidents: Path | No
     log_name = log.name if log.name != "incidents.csv" else f"log-{log.name}"
     raw: dict[str, Any] = {
         "system": f"{name} (local files)",
-        "description": f"registered by `logtrial ingest --name {name}` from {log}",
+        "description": f"registered by {how} from {log}",
         "sources": [{"file": log_name, "url": log.as_uri()}],
         "logs": [log_name],
         "format": fmt.model_dump(mode="json", exclude_defaults=True),
@@ -422,11 +428,13 @@ def register_local(name: str, log: Path, format_file: Path, incidents: Path | No
     path = user_registry_path(home)
     doc = read_yaml(path) if path.is_file() else None
     doc = doc if isinstance(doc, dict) and isinstance(doc.get("datasets"), dict) else {"datasets": {}}
-    doc["datasets"][name] = raw
     entry = parse_entry(name, raw, str(path))
+    if doc["datasets"].get(name) == raw:
+        return entry, path
+    doc["datasets"][name] = raw
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    tmp.write_text("# Written by `logtrial ingest --name`: local datasets, one entry per name.\n"
+    tmp.write_text("# Written by logtrial (ingest --name, inline experiment datasets): local datasets.\n"
                    + yaml.safe_dump(doc, sort_keys=False, allow_unicode=True), encoding="utf-8")
     os.replace(tmp, path)
     return entry, path

@@ -231,6 +231,29 @@ def _canonical_scoring(raw: Any, where: str) -> dict:
     return out
 
 
+INLINE_DATASET = {"name", "file", "format", "incidents"}
+
+
+def _inline_dataset(raw: dict, where: str, base: Path) -> str:
+    """A dataset given in the experiment as {name, file, format, incidents}: registered in the data home; its name."""
+    from logtrial.data.registry import register_local
+
+    unknown = sorted(set(raw) - INLINE_DATASET)
+    if unknown:
+        raise _unknown_field(f"{where}.", unknown[0], INLINE_DATASET)
+    for key in ("name", "file", "format"):
+        if not isinstance(raw.get(key), str) or not raw[key].strip():
+            raise ConfigError(f"{where}.{key}: required (text) for a dataset given in the experiment, got "
+                              f"{raw.get(key)!r}")
+    if raw.get("incidents") is not None and not isinstance(raw["incidents"], str):
+        raise ConfigError(f"{where}.incidents: expected a file path, got {raw['incidents']!r}")
+    incidents = base / raw["incidents"] if raw.get("incidents") else None
+    register_local(raw["name"], base / raw["file"], base / raw["format"], incidents,
+                   fields=(f"{where}.name", f"{where}.file", f"{where}.format", f"{where}.incidents"),
+                   how="an experiment file's `datasets:`")
+    return raw["name"]
+
+
 # Registry fields that change what a dataset's events or truth are (not its description).
 _ENTRY_FIELDS = {"sources", "logs", "format", "labels", "miner", "generator"}
 
@@ -336,8 +359,9 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
     _string(doc, "output", origin)
     base = path.parent if path else Path.cwd()
     registry_files = [base / p for p in _names(doc.get("registry") or [], "registry")] + list(extra_registry or [])
+    datasets = _names([_inline_dataset(d, f"datasets[{i}]", base) if isinstance(d, dict) else d
+                       for i, d in enumerate(_as_list(_need(doc, "datasets", origin)))], "datasets")
     registry = load_registry(registry_files)
-    datasets = _names(_need(doc, "datasets", origin), "datasets")
     fingerprints = {}
     for i, d in enumerate(datasets):
         try:
