@@ -8,7 +8,7 @@ import sys
 from pathlib import Path
 
 from logtrial import __version__
-from logtrial.errors import ConfigError, LogtrialError
+from logtrial.errors import ConfigError, DataError, LogtrialError
 
 
 def _table(rows: list[dict], columns: list[str]) -> str:
@@ -28,12 +28,13 @@ def _registry(args: argparse.Namespace):
 
 def cmd_datasets(args: argparse.Namespace) -> int:
     """List the registry and what is on disk."""
-    from logtrial.data.acquire import status
+    from logtrial.data.acquire import partial_downloads, status
     from logtrial.data.registry import home_dir
 
     reg = _registry(args)
     home = home_dir()
     rows = []
+    parts: list[str] = []
     for name, e in sorted(reg.items()):
         lines = e.expected.get("lines")
         rows.append(
@@ -46,7 +47,11 @@ def cmd_datasets(args: argparse.Namespace) -> int:
                 "on disk": "generated on demand" if e.generator is not None else status(e, home),
             }
         )
+        parts += [f"  {path} ({size / 2**20:.1f} MiB): kept so that `logtrial fetch {name}` resumes it; "
+                  "delete it to start over" for path, size in partial_downloads(e, home)]
     print(_table(rows, ["name", "system", "lines", "labels", "licence", "on disk"]))
+    if parts:
+        print("\npartial downloads:\n" + "\n".join(parts))
     print(f"\ndata folder: {home}  (set LOGTRIAL_HOME to move it)")
     return 0
 
@@ -60,10 +65,13 @@ def cmd_fetch(args: argparse.Namespace) -> int:
     entries = select_entries(args.names, _registry(args), load_groups(paths))
     home = home_dir()
 
-    label = {"fetched": "fetched and verified", "present": "present, verified against the lock"}
+    label = {"fetched": "refreshed and verified" if args.refresh else "fetched and verified",
+             "present": "already present (files unchanged since they were fetched; `--refresh` obtains them again)"}
 
     def report(out: FetchOutcome) -> None:
         print(f"{out.name}: {label.get(out.state, out.state)}: {out.detail}", flush=True)
+        for note in out.notes:
+            print(f"  {note}", flush=True)
         if out.first_use:
             print(f"  no pinned checksum for {', '.join(out.first_use)}: this first fetch recorded size and sha256 "
                   f"in {home / LOCK_NAME} (trust on first use); later fetches must match", flush=True)
@@ -71,7 +79,7 @@ def cmd_fetch(args: argparse.Namespace) -> int:
     if len(entries) > 1:
         print(f"fetching {len(entries)} datasets into {home}", flush=True)
     outcomes = fetch_many(entries, home=home, mirror=Path(args.mirror) if args.mirror else None,
-                          progress=True, on_done=report)
+                          progress=True, on_done=report, refresh=args.refresh)
     counts = {k: sum(o.state == k for o in outcomes) for k in ("fetched", "present", "skipped", "failed")}
     if len(entries) > 1:
         print(", ".join(f"{n} {k}" for k, n in counts.items() if n or k in ("fetched", "failed")))
@@ -102,6 +110,8 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
     home = home_dir()
     opts = dict(force=args.force, strict=args.strict, progress=True)
+    if args.dataset_name or args.incidents:
+        return _ingest_and_register(args, home, opts)
     if args.file:
         if not args.format:
             raise LogtrialError("ingest --file needs --format FILE.yaml (a `regex` with a `content` group)")
@@ -109,6 +119,8 @@ def cmd_ingest(args: argparse.Namespace) -> int:
         miner = miner_from_file(Path(args.format))
         name = args.name or f"file-{Path(args.file).stem.lower()}"
         res = ingest_files(name, [Path(args.file)], fmt, miner, home / "tables", **opts)
+        print("  (to use it in experiments, add --incidents FILE.csv --name NAME: it then becomes a dataset)",
+              file=sys.stderr)
     else:
         if not args.name:
             raise LogtrialError("ingest needs a dataset NAME or --file LOG --format FORMAT.yaml")
@@ -116,6 +128,37 @@ def cmd_ingest(args: argparse.Namespace) -> int:
         res = ingest_entry(entry, home, Path(args.mirror) if args.mirror else None, **opts)
         name = entry.name
     _print_ingest(res, name)
+    return 0
+
+
+def _ingest_and_register(args: argparse.Namespace, home: Path, opts: dict) -> int:
+    """`ingest --file LOG --format FMT [--incidents CSV] --name NAME`: a dataset experiments can name."""
+    from logtrial.data.acquire import fetch, log_files, user_paths
+    from logtrial.data.ingest import ingest_files
+    from logtrial.data.registry import register_local
+    from logtrial.labels.incidents import read_incidents
+
+    if not (args.file and args.format and args.dataset_name):
+        raise ConfigError("to make a dataset of your own logs give --file LOG --format FORMAT.yaml --name NAME "
+                          "(and --incidents INCIDENTS.csv for its truth)")
+    if args.name:
+        raise ConfigError(f"give the dataset name once: either NAME ({args.name}) or --name ({args.dataset_name})")
+    if args.incidents:
+        read_incidents(Path(args.incidents))  # errors name the user's own file, before anything is written
+    entry, where = register_local(args.dataset_name, Path(args.file), Path(args.format),
+                                  Path(args.incidents) if args.incidents else None, home)
+    res = fetch(entry, home=home, progress=True)
+    for note in res.notes:
+        print(f"{entry.name}: {note}")
+    try:
+        table = ingest_files(entry.name, log_files(entry, res.path), entry.format, entry.miner, home / "tables",
+                             **opts)
+    except DataError as exc:  # name the user's own file, not the copy in the data home
+        raise DataError(user_paths(str(exc), entry, res.path)) from None
+    _print_ingest(table, entry.name)
+    print(f"  registered dataset '{entry.name}' in {where}; name it in an experiment: datasets: [{entry.name}]")
+    if not args.incidents:
+        print("  no --incidents file: the dataset has no truth, so experiments cannot score it", file=sys.stderr)
     return 0
 
 
@@ -153,7 +196,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from logtrial.running.runs import run_experiment
 
     check_engine_options(args.engine, args.scheduler, args.workers)
-    exp = load_experiment(Path(args.experiment), output=args.out)
+    exp = load_experiment(Path(args.experiment), output=args.out, registry=args.registry)
     home: Path | str = home_dir()
     raw_home = os.environ.get("LOGTRIAL_HOME", "")
     if is_url(raw_home):
@@ -173,14 +216,17 @@ def cmd_report(args: argparse.Namespace) -> int:
     from logtrial.output.report import compact, to_text, write_report
     from logtrial.running.experiment import experiment_order, load_experiment
 
-    exp = load_experiment(Path(args.experiment), output=args.out)
+    exp = load_experiment(Path(args.experiment), output=args.out, registry=args.registry)
     paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs},
                          description=exp.raw.get("description"),
                          tolerance=exp.raw.get("tolerance"))
     print(paths["decision"] + "\n\nAll figures at the threshold policy:")
     print(to_text(compact(paths["table"])))
     print(f"\nreport: {paths['markdown']}\n        {paths['html']}\n        {paths['csv']}")
-    print(f"tracking: mlflow ui --backend-store-uri sqlite:///{(exp.output / 'mlflow.db').resolve()}")
+    from logtrial.running.tracking import TRACKING_DB, tracking_uri
+
+    if (exp.output / TRACKING_DB).is_file():  # runs made with --no-track have nothing to browse
+        print(f"tracking: mlflow ui --backend-store-uri {tracking_uri(exp.output)}")
     return 0
 
 
@@ -195,7 +241,7 @@ def cmd_gate(args: argparse.Namespace) -> int:
     from logtrial.running.runs import run_experiment
     from logtrial.running.store import RunStore
 
-    exp = load_experiment(Path(args.experiment))
+    exp = load_experiment(Path(args.experiment), registry=args.registry)
     reference_dir = Path(args.reference) if args.reference else exp.output
     reference = read_results(reference_dir, "reference")
     metrics, tol, rel = gate_settings(exp.raw.get("gate"))
@@ -206,15 +252,24 @@ def cmd_gate(args: argparse.Namespace) -> int:
         where = Path(args.fresh)
     else:
         out = Path(args.out) if args.out else Path(tempfile.mkdtemp(prefix="logtrial-gate-"))
-        fresh_exp = load_experiment(Path(args.experiment), output=out)
-        counts = run_experiment(fresh_exp, home_dir(), progress=not args.quiet, track=False)
-        if counts["failed"]:
-            print(f"gate: {counts['failed']} run(s) failed; see {out / 'runs'}", file=sys.stderr)
-        wanted = {r.run_id for r in fresh_exp.runs}
-        records = [r for r in RunStore(out).records() if r["run_id"] in wanted]
-        load_results(records).to_csv(out / "results.csv", index=False, float_format="%.6g")
-        fresh = read_results(out, "fresh results")  # same rounding as the committed reference
-        where = out
+        try:
+            fresh_exp = load_experiment(Path(args.experiment), output=out, registry=args.registry)
+            counts = run_experiment(fresh_exp, home_dir(), progress=not args.quiet, track=False,
+                                    mirror=Path(args.mirror) if args.mirror else None)
+            if counts["failed"]:
+                failed_runs = [r for r in RunStore(out).records() if r.get("status") == "failed"]
+                for r in failed_runs[:3]:
+                    print(f"gate: failed run {r['run_id']}: {r.get('error', '')}", file=sys.stderr)
+            wanted = {r.run_id for r in fresh_exp.runs}
+            records = [r for r in RunStore(out).records() if r["run_id"] in wanted]
+            load_results(records).to_csv(out / "results.csv", index=False, float_format="%.6g")
+            fresh = read_results(out, "fresh results")  # same rounding as the committed reference
+        finally:
+            if not args.out:
+                import shutil
+
+                shutil.rmtree(out, ignore_errors=True)  # the temporary fresh run is not kept
+        where = out if args.out else "a temporary run (removed; pass --out DIR to keep it)"
     result = compare(reference, fresh, metrics, tol, rel)
     failed = 0 if args.fresh else counts["failed"]
     print(f"gate {exp.name}: reference {reference_dir / 'results.csv'}  vs  fresh {where}")
@@ -283,38 +338,48 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--mirror", metavar="DIR",
                     help="offline: a local folder laid out like the source (default: LOGTRIAL_MIRROR; "
                          "unset: download from the public source)")
+    sp.add_argument("--refresh", action="store_true",
+                    help="obtain the files again and record their size and sha256 afresh (after the source "
+                         "changed on purpose); sizes and hashes pinned in the registry still apply")
     registry_opt(sp)
 
     sp = verb("ingest", cmd_ingest, "build (or reuse) the event table of a dataset or a log file",
-              "logtrial ingest bgl-2k\n  logtrial ingest --file my.log --format my-format.yaml")
-    sp.add_argument("name", metavar="NAME", nargs="?")
+              "logtrial ingest bgl-2k\n"
+              "  logtrial ingest --file app.log --format app-format.yaml --incidents incidents.csv --name my-app")
+    sp.add_argument("name", metavar="NAME", nargs="?", help="registry dataset to ingest")
     sp.add_argument("--file", metavar="LOG", help="ingest this log file instead of a registry dataset")
     sp.add_argument("--format", metavar="YAML", help="line format for --file (regex with a `content` group)")
-    sp.add_argument("--mirror", metavar="DIR")
+    sp.add_argument("--incidents", metavar="CSV",
+                    help="incidents file for --file (columns id, entity, start, end, kind; see the README)")
+    sp.add_argument("--name", dest="dataset_name", metavar="NAME",
+                    help="with --file: register the files as dataset NAME in the data home's registry.yaml, "
+                         "so experiments can name it")
+    sp.add_argument("--mirror", metavar="DIR", help="local folder holding the files (default: LOGTRIAL_MIRROR)")
     sp.add_argument("--force", action="store_true", help="rebuild even when a cached table matches")
     sp.add_argument("--strict", action="store_true", help="stop at the first undecodable line instead of replacing")
     registry_opt(sp)
 
     sp = verb("parse-score", cmd_parse_score, "template grouping accuracy against ground-truth templates",
               "logtrial parse-score bgl-2k")
-    sp.add_argument("name", metavar="NAME")
-    sp.add_argument("--mirror", metavar="DIR")
+    sp.add_argument("name", metavar="NAME", help="registry dataset with a `truth:` template file")
+    sp.add_argument("--mirror", metavar="DIR", help="local folder holding the files (default: LOGTRIAL_MIRROR)")
     registry_opt(sp)
 
     sp = verb("simulate", cmd_simulate, "write a simulated radar-relay fleet's logs and incidents",
               "logtrial simulate --out sim/\n  logtrial simulate scenario.yaml --out sim/")
     sp.add_argument("config", metavar="CONFIG", nargs="?", help="scenario YAML (default: built-in scenario)")
-    sp.add_argument("--out", required=True, metavar="DIR")
-    sp.add_argument("--seed", type=int)
+    sp.add_argument("--out", required=True, metavar="DIR", help="folder to write the logs and incidents.csv into")
+    sp.add_argument("--seed", type=int, help="random seed (default: the scenario's own)")
     sp.add_argument("--per-node", action="store_true", help="also write one log file per node under nodes/")
 
     sp = verb("run", cmd_run, "run or resume an experiment grid (every run recorded)",
               "logtrial run reports/bgl-2k/experiment.yaml\n"
               "  logtrial run reports/bgl-2k/experiment.yaml --engine dask --workers 2\n"
               "  logtrial run reports/bgl-2k/experiment.yaml --engine dask --scheduler tcp://scheduler-host:8786")
-    sp.add_argument("experiment", metavar="EXPERIMENT.yaml")
+    sp.add_argument("experiment", metavar="EXPERIMENT.yaml", help="the experiment file (a grid)")
     sp.add_argument("--out", metavar="DIR", help="output folder (default: the file's `output`)")
-    sp.add_argument("--mirror", metavar="DIR")
+    sp.add_argument("--mirror", metavar="DIR", help="local folder holding the files (default: LOGTRIAL_MIRROR)")
+    registry_opt(sp)
     sp.add_argument("--no-track", action="store_true", help="do not record runs in MLflow")
     sp.add_argument("--engine", choices=["local", "dask"], default="local",
                     help="local: in this process (default); dask: one task per fit group on a Dask cluster")
@@ -325,15 +390,19 @@ def build_parser() -> argparse.ArgumentParser:
 
     sp = verb("report", cmd_report, "comparison tables and plots from recorded runs",
               "logtrial report reports/bgl-2k/experiment.yaml")
-    sp.add_argument("experiment", metavar="EXPERIMENT.yaml")
+    sp.add_argument("experiment", metavar="EXPERIMENT.yaml", help="the experiment file whose runs to report")
     sp.add_argument("--out", metavar="DIR", help="output folder holding the runs (default: the file's `output`)")
+    registry_opt(sp)
 
     sp = verb("gate", cmd_gate, "compare a fresh run with the committed reference; exit 1 on regression",
               "logtrial gate reports/bgl-2k/experiment.yaml")
-    sp.add_argument("experiment", metavar="EXPERIMENT.yaml")
+    sp.add_argument("experiment", metavar="EXPERIMENT.yaml", help="the experiment file to re-run")
     sp.add_argument("--reference", metavar="DIR", help="reference results folder (default: the file's `output`)")
     sp.add_argument("--fresh", metavar="DIR", help="compare these results instead of re-running")
-    sp.add_argument("--out", metavar="DIR", help="where the fresh run goes (default: a temporary folder)")
+    sp.add_argument("--out", metavar="DIR",
+                    help="where the fresh run goes and stays (default: a temporary folder, removed afterwards)")
+    sp.add_argument("--mirror", metavar="DIR", help="local folder holding the files (default: LOGTRIAL_MIRROR)")
+    registry_opt(sp)
     sp.add_argument("--tolerance", type=float, help="absolute tolerance (default: the file's gate.tolerance or 0.02)")
     sp.add_argument("--all", action="store_true", help="show every compared figure, not only those that moved")
     sp.add_argument("--quiet", action="store_true", help="no per-run progress")
@@ -357,6 +426,20 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def os_error_text(exc: OSError) -> str:
+    """One line for a system error: what failed, on which file, and what to do."""
+    import errno
+
+    where = f"{exc.filename}: " if exc.filename else ""
+    advice = {errno.ENOSPC: "free some space (or point LOGTRIAL_HOME / --out elsewhere) and run again",
+              errno.EDQUOT: "free some space (or point LOGTRIAL_HOME / --out elsewhere) and run again",
+              errno.EACCES: "check the folder's permissions or choose another (LOGTRIAL_HOME, --out)",
+              errno.EPERM: "check the folder's permissions or choose another (LOGTRIAL_HOME, --out)",
+              errno.EROFS: "the file system is read-only: choose another folder (LOGTRIAL_HOME, --out)"}
+    tip = advice.get(exc.errno or -1, "")
+    return f"{where}{exc.strerror or exc}" + (f"; {tip}" if tip else "")
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the `logtrial` command."""
     parser = build_parser()
@@ -369,6 +452,9 @@ def main(argv: list[str] | None = None) -> int:
     except LogtrialError as exc:
         print(f"logtrial {args.verb}: error: {exc}", file=sys.stderr)
         return exc.exit_code
+    except OSError as exc:  # disk full, read-only or missing folders: one line, not a traceback
+        print(f"logtrial {args.verb}: error: {os_error_text(exc)}", file=sys.stderr)
+        return 1
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130

@@ -35,11 +35,11 @@ def test_readme_examples_are_valid(tmp_path: Path) -> None:
     from logtrial.running.experiment import load_experiment
 
     blocks = _yaml_blocks((ROOT / "README.md").read_text())
-    fmt = next(b for b in blocks if b.startswith("regex:"))
+    fmt = next(b for b in blocks if b.startswith("regex:") or b.startswith("# app-format.yaml\nregex:"))
     exp = next(b for b in blocks if b.startswith("experiment:"))
     (tmp_path / "fmt.yaml").write_text(fmt)
     assert "content" in format_from_file(tmp_path / "fmt.yaml").compiled().groupindex
-    assert miner_from_file(tmp_path / "fmt.yaml").masks == [r"\d+"]
+    assert miner_from_file(tmp_path / "fmt.yaml").masks == [r"\d+(?:\.\d+)*"]
     (tmp_path / "exp.yaml").write_text(exp)
     loaded = load_experiment(tmp_path / "exp.yaml")
     assert len(loaded.runs) == 1 * 2 * 1 * 1 * 2 * 6 * 2  # datasets x vocabularies x windows x task x noise x detectors x seeds

@@ -50,6 +50,7 @@ class FetchResult:
     files: list[Path]
     cached: bool
     recorded_hashes: bool
+    notes: list[str] = field(default_factory=list)
 
 
 # ---------------------------------------------------------------- lock file
@@ -109,12 +110,13 @@ def _lock_guard(home: Path) -> Iterator[None]:
             fcntl.flock(fh, fcntl.LOCK_UN)
 
 
-def _record(home: Path, dataset: str, checks: dict[str, tuple[int, str]]) -> None:
+def _record(home: Path, dataset: str, checks: dict[str, tuple[int, str]],
+            origins: dict[str, dict] | None = None) -> None:
     with _lock_guard(home):
         doc = read_lock(home)
         entry = doc.setdefault(dataset, {})
         for file, (size, digest) in checks.items():
-            entry[file] = {"size": size, "sha256": digest}
+            entry[file] = {"size": size, "sha256": digest, **(origins or {}).get(file, {})}
         _write_atomic(lock_path(home), json.dumps(doc, indent=2, sort_keys=True) + "\n")
 
 
@@ -154,9 +156,17 @@ def _pump(src: BinaryIO, out: BinaryIO, bar, limit: int | None = None) -> int:  
 
 
 def _copy_local(src: Path, part: Path, desc: str, progress: bool) -> None:
+    """Copy a local source into part; on failure remove the part (a local copy restarts from zero anyway)."""
     size = src.stat().st_size
-    with open(src, "rb") as fin, open(part, "wb") as fout, _bar(size, 0, desc, progress) as bar:
-        _pump(fin, fout, bar)
+    try:
+        with open(src, "rb") as fin, open(part, "wb") as fout, _bar(size, 0, desc, progress) as bar:
+            _pump(fin, fout, bar)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            part.unlink()
+        raise DataError(f"{src}: copy to {part.parent} failed ({exc.strerror or exc}); the partial copy was "
+                        "removed (a local copy is not resumed): free space or fix permissions, then fetch again") \
+            from None
 
 
 # ---------------------------------------------------------------- http(s) with resume
@@ -389,6 +399,101 @@ def _cached(entry: Entry, folder: Path, lock: dict) -> bool:
     return True
 
 
+def _files_manifest(home: Path, name: str) -> Path:
+    """Where the size, mtime and sha256 of a published dataset's files are kept (beside its folder)."""
+    return Path(home) / "data" / f".{name}.files.json"
+
+
+def _write_files_manifest(home: Path, name: str, folder: Path) -> None:
+    """Record size, mtime and sha256 of every file of a published dataset folder."""
+    files = sorted(p for p in Path(folder).rglob("*") if p.is_file())
+    doc = {p.relative_to(folder).as_posix(): [p.stat().st_size, p.stat().st_mtime_ns, sha256_file(p)]
+           for p in files}
+    _write_atomic(_files_manifest(home, name), json.dumps(doc, indent=1, sort_keys=True) + "\n")
+
+
+def edited_files(home: Path, name: str, folder: Path) -> list[str]:
+    """Files of a published dataset that differ from what fetch placed (size and mtime, else re-hash)."""
+    path = _files_manifest(home, name)
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except (FileNotFoundError, json.JSONDecodeError):
+        _write_files_manifest(home, name, folder)  # a folder published before this check: take it as is
+        return []
+    edited: list[str] = []
+    touched = False
+    for rel, (size, mtime_ns, digest) in doc.items():
+        p = Path(folder) / rel
+        try:
+            st = p.stat()
+        except FileNotFoundError:
+            edited.append(rel)
+            continue
+        if st.st_size != size:
+            edited.append(rel)
+        elif st.st_mtime_ns != mtime_ns:
+            if sha256_file(p) != digest:
+                edited.append(rel)
+            else:
+                doc[rel] = [size, st.st_mtime_ns, digest]  # touched, same bytes: remember the new mtime
+                touched = True
+    if touched and not edited:
+        _write_atomic(path, json.dumps(doc, indent=1, sort_keys=True) + "\n")
+    return edited
+
+
+def local_origin(src: Source) -> Path | None:
+    """The user's own file behind a source tracked by content (a file:// URL without a pinned size or sha256)."""
+    if src.url is None or not src.url.startswith("file://") or src.sha256 is not None or src.size is not None:
+        return None
+    return Path(urllib.request.url2pathname(urllib.parse.urlparse(src.url).path))
+
+
+def local_content(entry: Entry, home: Path | None = None) -> dict[str, str]:
+    """sha256 of each local source's current file (the lock's value while its size and mtime are unchanged)."""
+    rec = read_lock(Path(home) if home is not None else home_dir()).get(entry.name, {})
+    out: dict[str, str] = {}
+    for src in entry.sources:
+        origin = local_origin(src)
+        if origin is None or not origin.is_file():
+            continue
+        got, st = rec.get(src.file) or {}, origin.stat()
+        same = got.get("origin_size") == st.st_size and got.get("origin_mtime_ns") == st.st_mtime_ns
+        out[src.file] = str(got["sha256"]) if same and got.get("sha256") else sha256_file(origin)
+    return out
+
+
+def user_paths(message: str, entry: Entry, folder: Path) -> str:
+    """A message with the data home's copies of local sources replaced by the user's own file paths."""
+    for src in entry.sources:
+        origin = local_origin(src)
+        if origin is not None:
+            message = message.replace(str(Path(folder) / src.file), str(origin))
+    return message
+
+
+def _origin_stamp(path: Path) -> dict[str, int]:
+    st = path.stat()
+    return {"origin_size": st.st_size, "origin_mtime_ns": st.st_mtime_ns}
+
+
+def _local_changes(entry: Entry, lock: dict) -> list[str]:
+    """Local sources whose file changed since the lock recorded it (size and mtime, else re-hash)."""
+    rec = lock.get(entry.name, {})
+    changed = []
+    for src in entry.sources:
+        origin = local_origin(src)
+        got = rec.get(src.file)
+        if origin is None or not got or not origin.is_file():
+            continue
+        st = origin.stat()
+        if got.get("origin_size") == st.st_size and got.get("origin_mtime_ns") == st.st_mtime_ns:
+            continue
+        if st.st_size != got.get("size") or sha256_file(origin) != got.get("sha256"):
+            changed.append(src.file)
+    return changed
+
+
 def _place(entry: Entry, src: Source, download: Path, tmp: Path, size_cap: int) -> None:
     if src.unpack == "none":
         if download.stat().st_size > size_cap:
@@ -399,10 +504,8 @@ def _place(entry: Entry, src: Source, download: Path, tmp: Path, size_cap: int) 
         if target.exists():
             raise DataError(f"dataset '{entry.name}': {src.file}: already provided by another source "
                             "(expected each source to add files of its own)")
-        try:
-            os.link(download, target)
-        except OSError:
-            shutil.copyfile(download, target)
+        # A copy, not a hard link: editing the dataset's file must not alter the verified download.
+        shutil.copyfile(download, target)
     else:
         unpack_archive(download, tmp, src.unpack, size_cap)
 
@@ -419,8 +522,13 @@ def _publish(tmp: Path, folder: Path) -> None:
 
 
 def fetch(entry: Entry, home: Path | None = None, mirror: Path | None = None, progress: bool = True,
-          size_cap: int = DEFAULT_SIZE_CAP, force: bool = False, timeout: float = TIMEOUT_S) -> FetchResult:
+          size_cap: int = DEFAULT_SIZE_CAP, force: bool = False, timeout: float = TIMEOUT_S,
+          refresh: bool = False) -> FetchResult:
     """Acquire a dataset: obtain and verify each source, unpack safely, publish `<home>/data/<name>/`.
+
+    ``refresh`` obtains every source again and records its size and sha256 afresh (sizes
+    and hashes pinned in the registry still apply). Local sources (``file://`` without a
+    pinned hash) are tracked by content: a changed file is read again and a note says so.
 
     Processes fetching the same dataset take turns (an advisory lock per dataset), so a
     second one finds the first one's verified copy instead of racing on the same `.part`.
@@ -429,7 +537,7 @@ def fetch(entry: Entry, home: Path | None = None, mirror: Path | None = None, pr
         raise DataError(f"dataset '{entry.name}': has no `sources` to fetch (it is generated, not downloaded)")
     home = Path(home) if home is not None else home_dir()
     with _dataset_guard(home, entry.name):
-        return _fetch(entry, home, mirror, progress, size_cap, force, timeout)
+        return _fetch(entry, home, mirror, progress, size_cap, force, timeout, refresh)
 
 
 @dataclass
@@ -441,11 +549,12 @@ class FetchOutcome:
     detail: str
     exit_code: int = 0
     first_use: list[str] = field(default_factory=list)  # files whose checksums this fetch recorded, unpinned
+    notes: list[str] = field(default_factory=list)  # e.g. a local file that changed since it was last read
 
 
 def fetch_many(entries: list[Entry], home: Path | None = None, mirror: Path | None = None, progress: bool = True,
-               timeout: float = TIMEOUT_S, on_done: Callable[[FetchOutcome], None] | None = None
-               ) -> list[FetchOutcome]:
+               timeout: float = TIMEOUT_S, on_done: Callable[[FetchOutcome], None] | None = None,
+               refresh: bool = False) -> list[FetchOutcome]:
     """Fetch several datasets, one after the other; a failure is reported for its dataset and the rest go on."""
     outcomes: list[FetchOutcome] = []
     for entry in entries:
@@ -453,7 +562,7 @@ def fetch_many(entries: list[Entry], home: Path | None = None, mirror: Path | No
             out = FetchOutcome(entry.name, "skipped", "generated on demand, nothing to download")
         else:
             try:
-                res = fetch(entry, home=home, mirror=mirror, progress=progress, timeout=timeout)
+                res = fetch(entry, home=home, mirror=mirror, progress=progress, timeout=timeout, refresh=refresh)
             except LogtrialError as exc:
                 out = FetchOutcome(entry.name, "failed", str(exc), exit_code=exc.exit_code)
             except OSError as exc:
@@ -464,7 +573,7 @@ def fetch_many(entries: list[Entry], home: Path | None = None, mirror: Path | No
                          else "no pinned checksums")
                 first_use = [s.file for s in entry.sources if s.sha256 is None] if res.recorded_hashes else []
                 out = FetchOutcome(entry.name, "present" if res.cached else "fetched",
-                                   f"{res.path} ({check})", first_use=first_use)
+                                   f"{res.path} ({check})", first_use=first_use, notes=list(res.notes))
         outcomes.append(out)
         if on_done is not None:
             on_done(out)
@@ -490,25 +599,47 @@ def _dataset_guard(home: Path, name: str) -> Iterator[None]:
 
 
 def _fetch(entry: Entry, home: Path, mirror: Path | None, progress: bool, size_cap: int, force: bool,
-           timeout: float) -> FetchResult:
+           timeout: float, refresh: bool = False) -> FetchResult:
     """The body of `fetch`, run while holding the dataset's guard."""
     mirror = Path(mirror) if mirror is not None else None
     data_root = home / "data"
     folder = data_root / entry.name
     lock = read_lock(home)
-    if not force and _cached(entry, folder, lock):
-        return FetchResult(entry.name, folder, log_files(entry, folder), cached=True, recorded_hashes=False)
+    before = dict(lock.get(entry.name, {}))
+    notes: list[str] = []
+    if refresh:
+        lock = {k: v for k, v in lock.items() if k != entry.name}  # forget what was recorded; pins still apply
+        force = True
+    changed = _local_changes(entry, lock)
+    if changed:
+        for file in changed:
+            src = next(s for s in entry.sources if s.file == file)
+            notes.append(f"{local_origin(src)} changed since it was last read: reading the new content")
+        lock = {**lock, entry.name: {k: v for k, v in lock.get(entry.name, {}).items() if k not in changed}}
+    if not force and not changed and _cached(entry, folder, lock):
+        edited = edited_files(home, entry.name, folder)
+        if not edited:
+            return FetchResult(entry.name, folder, log_files(entry, folder), cached=True, recorded_hashes=False)
+        notes.append(f"{', '.join(edited)} in {folder} changed since it was fetched: placing the verified "
+                     "files again (edit the source instead, then fetch again)")
 
     downloads = home / "downloads" / entry.name
     obtained: list[tuple[Source, Path]] = []
     checks: dict[str, tuple[int, str]] = {}
+    origins: dict[str, dict] = {}
     recorded = False
     for src in entry.sources:
         path, size, digest = _obtain(entry, src, downloads, mirror, lock, progress, force, timeout)
         obtained.append((src, path))
         checks[src.file] = (size, digest)
-        if lock.get(entry.name, {}).get(src.file) != {"size": size, "sha256": digest}:
+        origin = local_origin(src)
+        if origin is not None and origin.is_file():
+            origins[src.file] = _origin_stamp(origin)
+        if lock.get(entry.name, {}).get(src.file) != {"size": size, "sha256": digest, **origins.get(src.file, {})}:
             recorded = True
+        old = before.get(src.file, {}).get("sha256")
+        if refresh and old is not None and old != digest:
+            notes.append(f"{src.file}: sha256 changed from {old[:12]}… to {digest[:12]}… (recorded afresh)")
 
     data_root.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{entry.name}.tmp-", dir=data_root))
@@ -520,12 +651,14 @@ def _fetch(entry: Entry, home: Path, mirror: Path | None, progress: bool, size_c
                 raise DataError(f"{exc}; the download was moved to {_reject(path)}") from None
         log_files(entry, tmp)
         if recorded:
-            _record(home, entry.name, checks)
+            _record(home, entry.name, checks, origins)
         _publish(tmp, folder)
+        _write_files_manifest(home, entry.name, folder)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    return FetchResult(entry.name, folder, log_files(entry, folder), cached=False, recorded_hashes=recorded)
+    return FetchResult(entry.name, folder, log_files(entry, folder), cached=False, recorded_hashes=recorded,
+                       notes=notes)
 
 
 # ---------------------------------------------------------------- status
@@ -549,6 +682,14 @@ def verify(entry: Entry, home: Path | None = None) -> dict[str, str]:
         else:
             out[src.file] = "ok"
     return out
+
+
+def partial_downloads(entry: Entry, home: Path | None = None) -> list[tuple[Path, int]]:
+    """`.part` files of a dataset's downloads with their sizes (kept so that an https download can resume)."""
+    downloads = (Path(home) if home is not None else home_dir()) / "downloads" / entry.name
+    if not downloads.is_dir():
+        return []
+    return [(p, p.stat().st_size) for p in sorted(downloads.glob("*.part")) if p.is_file()]
 
 
 def status(entry: Entry, home: Path | None = None) -> str:

@@ -177,6 +177,8 @@ class Labels(_Strict):
     def _duration(cls, v: str) -> str:
         import pandas as pd
 
+        if v.strip().lstrip("+-").replace(".", "", 1).isdigit():
+            raise ValueError(f"{v!r} has no unit; write a duration with its unit such as '60s' or '1h'")
         try:
             td = pd.Timedelta(v)
         except (ValueError, TypeError):
@@ -184,6 +186,11 @@ class Labels(_Strict):
         if td < pd.Timedelta(0):
             raise ValueError(f"must not be negative, got {v!r}")
         return v
+
+    @field_validator("file")
+    @classmethod
+    def _inside(cls, v: str | None) -> str | None:
+        return inside_folder(v)
 
     @model_validator(mode="after")
     def _file_when_needed(self) -> "Labels":
@@ -227,6 +234,11 @@ class Truth(_Strict):
     template: str = "EventTemplate"
     content: str = "Content"
 
+    @field_validator("file", "templates")
+    @classmethod
+    def _inside(cls, v: str | None) -> str | None:
+        return inside_folder(v)
+
 
 class Entry(_Strict):
     """One dataset of the registry."""
@@ -260,11 +272,31 @@ class Entry(_Strict):
         return self
 
 
+def inside_folder(path: str | None) -> str | None:
+    """A data path of an entry, refused unless it is relative and stays inside the dataset folder."""
+    if path is None:
+        return None
+    parts = path.replace("\\", "/").split("/")
+    if not path or path.startswith(("/", "\\", "~")) or re.match(r"^[A-Za-z]:", path) or ".." in parts:
+        raise ValueError(f"{path!r} must be a relative path inside the dataset folder (no '..', not absolute)")
+    return path
+
+
 def _compile(rx: str) -> re.Pattern[str]:
     try:
         return re.compile(rx)
     except re.error as exc:
         raise ValueError(f"invalid regular expression {rx!r}: {exc}") from None
+
+
+def _field_hint(name: str) -> str:
+    """' (did you mean `x`?)' when an unknown registry field is close to a known one."""
+    import difflib
+
+    known = {f for model in (Entry, Source, LineFormat, Labels, Miner, Truth, Timestamp, Grouping, Tag)
+             for f in model.model_fields}
+    close = difflib.get_close_matches(name, sorted(known), n=1, cutoff=0.7)
+    return f" (did you mean `{close[0]}`?)" if close else ""
 
 
 def _describe(err: ValidationError) -> str:
@@ -275,9 +307,28 @@ def _describe(err: ValidationError) -> str:
         if e["type"] == "missing":
             msg = "required field is missing"
         elif e["type"] == "extra_forbidden":
-            msg = "unknown field"
+            msg = "unknown field" + _field_hint(str(e["loc"][-1]))
         parts.append(f"{loc}: {msg}")
     return "; ".join(parts)
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """Safe YAML loader that refuses a key repeated in one mapping (YAML would keep the last silently)."""
+
+    def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict:  # type: ignore[override]
+        seen: dict[Any, int] = {}
+        for key_node, _ in node.value:
+            key = self.construct_object(key_node, deep=True)
+            try:
+                first = seen.get(key)
+            except TypeError:
+                continue  # an unhashable key fails in the base constructor with its own message
+            if first is not None:
+                raise yaml.constructor.ConstructorError(
+                    None, None, f"duplicate key {key!r} (first at line {first}); each key may appear once",
+                    key_node.start_mark)
+            seen[key] = key_node.start_mark.line + 1
+        return super().construct_mapping(node, deep=deep)
 
 
 def read_yaml(path: Path) -> Any:
@@ -289,7 +340,7 @@ def read_yaml(path: Path) -> Any:
     except UnicodeDecodeError as exc:
         raise ConfigError(f"{path}: not valid UTF-8 text (byte {exc.start})") from None
     try:
-        return yaml.safe_load(text)
+        return yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - a SafeLoader subclass
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark else ""
@@ -308,9 +359,21 @@ def parse_entry(name: str, raw: Any, origin: str, defaults: dict | None = None) 
         raise ConfigError(f"{origin}: dataset '{name}': {_describe(exc)}") from None
 
 
+USER_REGISTRY = "registry.yaml"
+
+
+def user_registry_path(home: Path | None = None) -> Path:
+    """The registry file that `logtrial ingest --name` writes under the data home."""
+    return Path(home if home is not None else home_dir()) / USER_REGISTRY
+
+
 def load_registry(paths: list[Path] | None = None) -> dict[str, Entry]:
-    """Load the built-in registry plus any user registry files (later files override names)."""
-    files = _registry_files(paths)
+    """Load the built-in registry, the data home's user registry (if any) and extra registry files."""
+    return _load_files(_registry_files(paths))
+
+
+def _load_files(files: list[Path]) -> dict[str, Entry]:
+    """Entries of several registry files; a later file's entry replaces an earlier one of the same name."""
     entries: dict[str, Entry] = {}
     bases: dict[str, str] = {}
     for path in files:
@@ -329,7 +392,12 @@ def load_registry(paths: list[Path] | None = None) -> dict[str, Entry]:
 
 
 def _registry_files(paths: list[Path] | None) -> list[Path]:
-    return [Path(os.environ.get("LOGTRIAL_REGISTRY", DEFAULT_REGISTRY))] + [Path(p) for p in paths or []]
+    """The built-in registry, the data home's user registry when it exists, then the given files."""
+    files = [Path(os.environ.get("LOGTRIAL_REGISTRY", DEFAULT_REGISTRY))]
+    user = user_registry_path()
+    if user.is_file():
+        files.append(user)
+    return files + [Path(p) for p in paths or []]
 
 
 def _read_bases(doc: dict, path: Path) -> dict[str, str]:
@@ -419,6 +487,59 @@ def select_entries(names: list[str], registry: dict[str, Entry], groups: dict[st
             raise ConfigError(f"unknown dataset or group '{name}'.{hint} Groups: {known}; "
                               "run `logtrial datasets` to list the datasets.")
     return list(chosen.values())
+
+
+def register_local(name: str, log: Path, format_file: Path, incidents: Path | None = None,
+                   home: Path | None = None, fields: tuple[str, str, str, str] = (
+                       "--name", "--file", "--format", "--incidents"),
+                   how: str = "`logtrial ingest --name`") -> tuple[Entry, Path]:
+    """Write (or replace) a user registry entry for local files so experiments can name it; return it and the file.
+
+    ``fields`` names the options (or YAML fields) the values came from, for error messages;
+    the registry file is left untouched when the entry is already there unchanged.
+    """
+    if not isinstance(name, str) or not re.fullmatch(r"[a-z0-9][a-z0-9._-]*", name) or name in (".", ".."):
+        raise ConfigError(f"{fields[0]} {name!r}: expected lower-case letters, digits, '.', '_' or '-' "
+                          "(starting with a letter or digit)")
+    builtin = load_registry_file(Path(os.environ.get("LOGTRIAL_REGISTRY", DEFAULT_REGISTRY)))
+    if name in builtin:
+        raise ConfigError(f"{fields[0]} {name!r}: a built-in dataset has that name; choose another")
+    for what, p in zip(fields[1:], (log, format_file, incidents)):
+        if p is not None and not Path(p).is_file():
+            raise ConfigError(f"{what} {p}: file not found")
+    fmt = format_from_file(Path(format_file))
+    miner = miner_from_file(Path(format_file))
+    log = Path(log).resolve()
+    log_name = log.name if log.name != "incidents.csv" else f"log-{log.name}"
+    raw: dict[str, Any] = {
+        "system": f"{name} (local files)",
+        "description": f"registered by {how} from {log}",
+        "sources": [{"file": log_name, "url": log.as_uri()}],
+        "logs": [log_name],
+        "format": fmt.model_dump(mode="json", exclude_defaults=True),
+        "miner": miner.model_dump(mode="json", exclude_defaults=True),
+    }
+    if incidents is not None:
+        raw["sources"].append({"file": "incidents.csv", "url": Path(incidents).resolve().as_uri()})
+        raw["labels"] = {"scheme": "incidents", "file": "incidents.csv"}
+    path = user_registry_path(home)
+    doc = read_yaml(path) if path.is_file() else None
+    doc = doc if isinstance(doc, dict) and isinstance(doc.get("datasets"), dict) else {"datasets": {}}
+    entry = parse_entry(name, raw, str(path))
+    if doc["datasets"].get(name) == raw:
+        return entry, path
+    doc["datasets"][name] = raw
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    tmp.write_text("# Written by logtrial (ingest --name, inline experiment datasets): local datasets.\n"
+                   + yaml.safe_dump(doc, sort_keys=False, allow_unicode=True), encoding="utf-8")
+    os.replace(tmp, path)
+    return entry, path
+
+
+def load_registry_file(path: Path) -> dict[str, Entry]:
+    """The entries of one registry file."""
+    return _load_files([Path(path)])
 
 
 def get_entry(name: str, registry: dict[str, Entry]) -> Entry:

@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 from logtrial.evaluation.paired import FEW_FAILURES, mcnemar_exact, min_detectable_difference, wilson_interval
 from logtrial.running.experiment import vocabulary_label
+from logtrial.windowing import durations
 
 ALPHA = 0.05
 METHOD = ("exact McNemar test on per-failure outcomes (two-sided, alpha 0.05; checked against "
@@ -31,22 +32,11 @@ def budget_label(key: str) -> str:
 
 
 def format_duration(value: object) -> str:
-    """A duration as 1h, 7d, 90m, 1d12h (anything else unchanged)."""
+    """A duration as 1h, 7d, 90min (anything that is not a duration unchanged)."""
     try:
-        td = pd.Timedelta(value)
+        return durations.format_duration(value)
     except (ValueError, TypeError):
         return str(value)
-    if td is pd.NaT:
-        return str(value)
-    secs = int(td.total_seconds())
-    if secs == 0:
-        return "0s"
-    parts = []
-    for unit, size in (("d", 86400), ("h", 3600), ("m", 60), ("s", 1)):
-        if secs >= size:
-            parts.append(f"{secs // size}{unit}")
-            secs %= size
-    return "".join(parts)
 
 
 def setting_label(cfg: dict) -> str:

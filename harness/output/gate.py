@@ -9,6 +9,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from logtrial.errors import ConfigError
+from logtrial.windowing.durations import shorten_durations
 
 KEYS = ["dataset", "vocabulary", "windows", "task", "noise", "detector"]
 # Metric -> True when higher is better.
@@ -78,6 +79,9 @@ def read_results(folder: Path, what: str) -> pd.DataFrame:
 def _mean_over_seeds(results: pd.DataFrame) -> pd.DataFrame:
     if "vocabulary" not in results.columns:  # results written before vocabularies were a grid axis
         results = results.assign(vocabulary="templates")
+    # Results written before durations were shown as '1h' spell them '0 days 01:00:00': same key.
+    results = results.assign(**{c: results[c].map(shorten_durations) for c in ("windows", "task")
+                                if c in results.columns})
     num = [c for c in results.columns if c not in KEYS + ["run_id", "seed"] and
            pd.api.types.is_numeric_dtype(results[c])]
     grouped = results.groupby(KEYS, sort=False)

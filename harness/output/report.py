@@ -11,7 +11,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from logtrial.errors import DataError
-from logtrial.output.tolerance import tolerance_section
 from logtrial.evaluation.paired import FEW_FAILURES
 from logtrial.output.decision import (
     METHOD,
@@ -24,6 +23,7 @@ from logtrial.output.decision import (
     point_title,
     sentence,
 )
+from logtrial.output.tolerance import tolerance_section
 from logtrial.running.experiment import vocabulary_label
 
 # Headline figures: (record key, column title).

@@ -13,6 +13,7 @@ import pandas as pd
 from logtrial import __version__
 from logtrial.data.registry import read_yaml
 from logtrial.errors import ConfigError, LogtrialError
+from logtrial.windowing.durations import format_duration
 
 TOP_LEVEL = {
     "experiment", "description", "output", "datasets", "windows", "tasks", "task", "split", "noise", "detectors",
@@ -91,6 +92,63 @@ def _as_list(value: Any) -> list:
     return value if isinstance(value, list) else [value]
 
 
+def did_you_mean(word: str, known: Any) -> str:
+    """' Did you mean X?' for a misspelt name close to one of the known ones, else ''."""
+    import difflib
+
+    close = difflib.get_close_matches(str(word), [str(k) for k in known], n=1, cutoff=0.6)
+    return f" Did you mean '{close[0]}'?" if close else ""
+
+
+def _unknown_field(where: str, field_name: str, allowed: Any) -> ConfigError:
+    """ConfigError for a field that is not allowed, with a suggestion when it looks misspelt."""
+    allowed = sorted(allowed)
+    hint = did_you_mean(field_name, allowed)
+    return ConfigError(f"{where}{field_name}: unknown field (allowed: {', '.join(allowed)}).{hint}")
+
+
+def _text_duration(value: Any, where: str) -> None:
+    """Refuse a duration without a unit (`60` could be seconds, minutes or hours)."""
+    if isinstance(value, bool) or isinstance(value, (int, float)) or (
+            isinstance(value, str) and value.strip().lstrip("+-").replace(".", "", 1).isdigit()):
+        raise ConfigError(f"{where}: {value!r} has no unit; write a duration with its unit such as '60s', "
+                          "'60min' or '1h'")
+
+
+def _string(doc: dict, key: str, where: str, required: bool = False) -> str | None:
+    """A field that must be a piece of text (a name or a path), not a list or a number."""
+    value = doc.get(key)
+    if value is None:
+        if required:
+            raise ConfigError(f"{where}: `{key}` is required")
+        return None
+    if not isinstance(value, str) or not value.strip():
+        raise ConfigError(f"{where}: `{key}` must be a single piece of text, got {value!r}")
+    return value
+
+
+def _names(value: Any, key: str) -> list[str]:
+    """A name or a list of names (datasets, registry files), refused when not text or repeated."""
+    items = _as_list(value)
+    for i, v in enumerate(items):
+        if not isinstance(v, str) or not v.strip():
+            raise ConfigError(f"{key}[{i}]: expected a name (text), got {v!r}")
+    _no_repeats(items, key)
+    return items
+
+
+def _no_repeats(items: list, key: str, show: Any = None) -> None:
+    """Refuse a grid axis that lists the same value twice (the runs would collapse into one)."""
+    seen: dict[str, int] = {}
+    for i, v in enumerate(items):
+        k = json.dumps(v, sort_keys=True, default=str)
+        if k in seen:
+            shown = show(v) if show else v
+            raise ConfigError(f"{key}[{i}]: repeats {key}[{seen[k]}] ({shown}); each grid value must be "
+                              "listed once, or the runs collapse and the counts no longer add up")
+        seen[k] = i
+
+
 def _need(doc: dict, key: str, where: str) -> Any:
     if key not in doc or doc[key] in (None, [], {}):
         raise ConfigError(f"{where}: `{key}` is required")
@@ -106,8 +164,13 @@ def _canonical_task(raw: Any, where: str) -> dict:
         raise ConfigError(f"{where}: expected a mapping like {{name: predict, horizon: 24h}}")
     unknown = sorted(set(raw) - {"name", "horizon"})
     if unknown:
-        raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: name, horizon)")
+        raise _unknown_field(f"{where}.", unknown[0], {"name", "horizon"})
     name = raw.get("name")
+    if name == "detect" and raw.get("horizon") is not None:
+        raise ConfigError(f"{where}.horizon: not used by the detect task (it scores the windows that overlap a "
+                          f"failure); remove it, or use {{name: predict, horizon: {raw['horizon']}}}")
+    if raw.get("horizon") is not None:
+        _text_duration(raw["horizon"], f"{where}.horizon")
     try:
         horizon = check_task(name, raw.get("horizon"))
     except ConfigError as exc:
@@ -125,7 +188,7 @@ def _canonical_split(raw: Any, where: str) -> dict:
     allowed = {"kind", "fractions", "embargo"}
     unknown = sorted(set(raw) - allowed)
     if unknown:
-        raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: {sorted(allowed)})")
+        raise _unknown_field(f"{where}.", unknown[0], allowed)
     kind = raw.get("kind", "chronological")
     if kind not in ("chronological", "random"):
         raise ConfigError(f"{where}.kind: must be chronological or random, got {kind!r}")
@@ -138,7 +201,11 @@ def _canonical_split(raw: Any, where: str) -> dict:
     if raw.get("embargo") is not None:
         from logtrial.windowing.windows import parse_duration
 
-        out["embargo"] = str(parse_duration(raw["embargo"], f"{where}.embargo"))
+        _text_duration(raw["embargo"], f"{where}.embargo")
+        embargo = parse_duration(raw["embargo"], f"{where}.embargo")
+        if embargo < pd.Timedelta(0):
+            raise ConfigError(f"{where}.embargo: must not be negative, got {raw['embargo']!r}")
+        out["embargo"] = str(embargo)
     return out
 
 
@@ -150,16 +217,44 @@ def _canonical_scoring(raw: Any, where: str) -> dict:
         raise ConfigError(f"{where}: expected a mapping")
     unknown = sorted(set(raw) - set(SCORING_DEFAULTS))
     if unknown:
-        raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: {sorted(SCORING_DEFAULTS)})")
+        raise _unknown_field(f"{where}.", unknown[0], SCORING_DEFAULTS)
     out = {**SCORING_DEFAULTS, **raw}
-    out["cooldown"] = str(parse_duration(out["cooldown"], f"{where}.cooldown"))
-    if not isinstance(out["bootstrap"], int) or out["bootstrap"] < 0:
+    _text_duration(out["cooldown"], f"{where}.cooldown")
+    cooldown = parse_duration(out["cooldown"], f"{where}.cooldown")
+    if cooldown < pd.Timedelta(0):
+        raise ConfigError(f"{where}.cooldown: must not be negative, got {out['cooldown']!r}")
+    out["cooldown"] = str(cooldown)
+    if isinstance(out["bootstrap"], bool) or not isinstance(out["bootstrap"], int) or out["bootstrap"] < 0:
         raise ConfigError(f"{where}.bootstrap: expected a whole number of resamples >= 0, got {out['bootstrap']!r}")
-    if not 0 < float(out["ci_level"]) < 1:
+    if isinstance(out["ci_level"], bool) or not isinstance(out["ci_level"], (int, float)) \
+            or not 0 < float(out["ci_level"]) < 1:
         raise ConfigError(f"{where}.ci_level: expected a number between 0 and 1, got {out['ci_level']!r}")
     if out["bootstrap_unit"] not in ("entity", "incident"):
         raise ConfigError(f"{where}.bootstrap_unit: must be entity or incident, got {out['bootstrap_unit']!r}")
     return out
+
+
+INLINE_DATASET = {"name", "file", "format", "incidents"}
+
+
+def _inline_dataset(raw: dict, where: str, base: Path) -> str:
+    """A dataset given in the experiment as {name, file, format, incidents}: registered in the data home; its name."""
+    from logtrial.data.registry import register_local
+
+    unknown = sorted(set(raw) - INLINE_DATASET)
+    if unknown:
+        raise _unknown_field(f"{where}.", unknown[0], INLINE_DATASET)
+    for key in ("name", "file", "format"):
+        if not isinstance(raw.get(key), str) or not raw[key].strip():
+            raise ConfigError(f"{where}.{key}: required (text) for a dataset given in the experiment, got "
+                              f"{raw.get(key)!r}")
+    if raw.get("incidents") is not None and not isinstance(raw["incidents"], str):
+        raise ConfigError(f"{where}.incidents: expected a file path, got {raw['incidents']!r}")
+    incidents = base / raw["incidents"] if raw.get("incidents") else None
+    register_local(raw["name"], base / raw["file"], base / raw["format"], incidents,
+                   fields=(f"{where}.name", f"{where}.file", f"{where}.format", f"{where}.incidents"),
+                   how="an experiment file's `datasets:`")
+    return raw["name"]
 
 
 # Registry fields that change what a dataset's events or truth are (not its description).
@@ -167,8 +262,17 @@ _ENTRY_FIELDS = {"sources", "logs", "format", "labels", "miner", "generator"}
 
 
 def entry_fingerprint(entry) -> str:
-    """Hash of the registry fields that define a dataset's data, so that editing them changes run ids."""
-    blob = json.dumps(entry.model_dump(mode="json", include=_ENTRY_FIELDS), sort_keys=True)
+    """Hash of the registry fields that define a dataset's data, so that editing them changes run ids.
+
+    Local sources (your own files, tracked by content) add their sha256: editing the file changes run ids.
+    """
+    from logtrial.data.acquire import local_content
+
+    doc = entry.model_dump(mode="json", include=_ENTRY_FIELDS)
+    content = local_content(entry)
+    if content:
+        doc["local_content"] = content
+    blob = json.dumps(doc, sort_keys=True)
     return hashlib.sha256(blob.encode()).hexdigest()[:16]
 
 
@@ -239,11 +343,14 @@ def _canonical_detector(raw: Any, where: str) -> dict:
         raise ConfigError(f"{where}: expected a detector name or {{name: ..., params: {{...}}}}")
     unknown = sorted(set(raw) - {"name", "params", "label"})
     if unknown:
-        raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: name, params, label)")
+        raise _unknown_field(f"{where}.", unknown[0], {"name", "params", "label"})
     try:
         params = create(str(raw["name"]), raw.get("params") or {}, seed=0, source=where).params.model_dump(mode="json")
     except LogtrialError as exc:
-        raise ConfigError(str(exc)) from None
+        from logtrial.detectors.registry import available
+
+        hint = "" if str(raw["name"]) in available() else did_you_mean(str(raw["name"]), available())
+        raise ConfigError(f"{exc}{hint}") from None
     out = {"name": str(raw["name"]), "params": params}
     if raw.get("label"):
         out["label"] = str(raw["label"])
@@ -264,8 +371,9 @@ def _canonical_budgets(raw: Any) -> tuple[float, ...]:
     return tuple(sorted(float(b) for b in raw))
 
 
-def load_experiment(source: str | Path | dict, output: str | Path | None = None) -> Experiment:
-    """Validate an experiment file (or dict) and expand its grid into run configs."""
+def load_experiment(source: str | Path | dict, output: str | Path | None = None,
+                    registry: list[Path] | None = None) -> Experiment:
+    """Validate an experiment file (or dict) and expand its grid into run configs (plus extra registry files)."""
     path = None
     if isinstance(source, (str, Path)):
         path = Path(source)
@@ -277,23 +385,28 @@ def load_experiment(source: str | Path | dict, output: str | Path | None = None)
         raise ConfigError(f"{origin}: expected a mapping with `experiment`, `datasets`, `detectors`, ...")
     unknown = sorted(set(doc) - TOP_LEVEL)
     if unknown:
-        raise ConfigError(f"{origin}: `{unknown[0]}`: unknown field (allowed: {sorted(TOP_LEVEL)})")
+        raise ConfigError(f"{origin}: `{unknown[0]}`: unknown field (allowed: {', '.join(sorted(TOP_LEVEL))})."
+                          f"{did_you_mean(unknown[0], TOP_LEVEL)}")
     try:
-        return _expand(doc, origin, path, output)
+        return _expand(doc, origin, path, output, [Path(p) for p in registry or []])
     except ConfigError as exc:
         msg = str(exc)
         raise ConfigError(msg if msg.startswith(origin) else f"{origin}: {msg}") from None
 
 
-def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None) -> Experiment:
+def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None,
+            extra_registry: list[Path] | None = None) -> Experiment:
     from logtrial.data.registry import get_entry, load_registry
     from logtrial.evaluation.thresholds import load_policy
 
-    name = str(_need(doc, "experiment", origin))
+    name = _string(doc, "experiment", origin, required=True)
+    _string(doc, "description", origin)
+    _string(doc, "output", origin)
     base = path.parent if path else Path.cwd()
-    registry_files = [base / p for p in _as_list(doc.get("registry") or [])]
+    registry_files = [base / p for p in _names(doc.get("registry") or [], "registry")] + list(extra_registry or [])
+    datasets = _names([_inline_dataset(d, f"datasets[{i}]", base) if isinstance(d, dict) else d
+                       for i, d in enumerate(_as_list(_need(doc, "datasets", origin)))], "datasets")
     registry = load_registry(registry_files)
-    datasets = [str(d) for d in _as_list(_need(doc, "datasets", origin))]
     fingerprints = {}
     for i, d in enumerate(datasets):
         try:
@@ -302,30 +415,41 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
             raise ConfigError(f"datasets[{i}]: {exc}") from None
     from logtrial.windowing.windows import load_window_spec
 
-    windows = [load_window_spec(w, f"windows[{i}]").as_dict() for i, w in
-               enumerate(_as_list(_need(doc, "windows", origin)))]
+    raw_windows = _as_list(_need(doc, "windows", origin))
+    for i, w in enumerate(raw_windows):
+        if isinstance(w, dict) and w.get("kind") == "time":
+            for key in ("size", "step"):
+                if w.get(key) is not None:
+                    _text_duration(w[key], f"windows[{i}].{key}")
+    windows = [load_window_spec(w, f"windows[{i}]").as_dict() for i, w in enumerate(raw_windows)]
+    _no_repeats(windows, "windows", window_label)
     if "task" in doc and "tasks" in doc:
         raise ConfigError("give `task` or `tasks`, not both")
     tasks = [_canonical_task(t, f"tasks[{i}]") for i, t in enumerate(_as_list(doc.get("tasks", doc.get("task"))))
              if t is not None]
     if not tasks:
         raise ConfigError("`task` is required (e.g. {name: predict, horizon: 24h})")
+    _no_repeats(tasks, "tasks", lambda t: " ".join(f"{k}={format_duration(v) if k == 'horizon' else v}"
+                                                   for k, v in t.items()))
     for t in tasks:
         for w in windows:
             if "horizon" in t and "size" in w and pd.Timedelta(t["horizon"]) < pd.Timedelta(w["size"]):
-                raise ConfigError(f"task.horizon must be at least the window size ({w['size']}), got {t['horizon']}")
+                raise ConfigError(f"task.horizon must be at least the window size ({format_duration(w['size'])}), "
+                                  f"got {format_duration(t['horizon'])}")
     split = _canonical_split(doc.get("split"), "split")
     noises = _noise_settings(_as_list(doc.get("noise") or [None]), base)
     names = [n["name"] for n in noises]
     if len(set(names)) != len(names):
         raise ConfigError(f"noise: level names must be unique, got {names}")
     dets = [_canonical_detector(d, f"detectors[{i}]") for i, d in enumerate(_as_list(_need(doc, "detectors", origin)))]
+    _no_repeats(dets, "detectors", lambda d: d["name"])
     labels = [d.get("label") or d["name"] for d in dets]
     if len(set(labels)) != len(labels):
         raise ConfigError(f"detectors: give repeated detectors distinct `label`s, got {labels}")
     seeds = _as_list(doc.get("seeds", [0]))
     if not all(isinstance(s, int) and not isinstance(s, bool) for s in seeds):
         raise ConfigError(f"seeds: expected whole numbers, got {seeds!r}")
+    _no_repeats(seeds, "seeds")
     try:
         policy = load_policy(doc.get("threshold") or {"kind": "best_f1"})
     except ConfigError as exc:
@@ -343,6 +467,7 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
         raise ConfigError("give `vocabulary` or `vocabularies`, not both")
     vocabs = [_canonical_vocabulary(v, f"vocabularies[{i}]") for i, v in
               enumerate(_as_list(doc.get("vocabularies", doc.get("vocabulary", "templates"))))]
+    _no_repeats(vocabs, "vocabularies", vocabulary_label)
     runs = [
         RunConfig(dataset=d, windows=w, task=t, split=split, noise=n, detector=det, seed=int(s),
                   threshold=threshold, scoring=scoring, vocabulary=v, dataset_entry=fingerprints[d],
@@ -353,6 +478,18 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
     if not out.is_absolute() and output is None and doc.get("output"):
         out = base / out
     return Experiment(name=name, path=path, output=out, runs=runs, raw=doc, registry_files=registry_files)
+
+
+def window_label(windows: dict) -> str:
+    """Short text of a window spec: 'time 1h', 'time 1h step 15min', 'count 50', 'session'."""
+    kind = windows.get("kind", "?")
+    if kind == "time":
+        size, step = format_duration(windows["size"]), format_duration(windows.get("step", windows["size"]))
+        return f"time {size}" + ("" if step == size else f" step {step}")
+    if kind == "count":
+        n, step = windows.get("n"), windows.get("step", windows.get("n"))
+        return f"count {n}" + ("" if step == n else f" step {step}")
+    return str(kind)
 
 
 def experiment_order(exp: Experiment) -> tuple[list[str], list[str]]:

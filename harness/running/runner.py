@@ -23,8 +23,8 @@ from logtrial.data.registry import get_entry, load_registry
 from logtrial.detectors.base import Detector
 from logtrial.detectors.registry import create
 from logtrial.errors import DataError
-from logtrial.evaluation.run_figures import evaluate_run, window_metrics_safe
 from logtrial.evaluation.curves import CURVE_NOTE, operating_curve
+from logtrial.evaluation.run_figures import evaluate_run, window_metrics_safe
 from logtrial.evaluation.thresholds import ThresholdChoice, budget_key, budget_policy, choose_threshold, load_policy
 from logtrial.labels.noise import load_noise, replay
 from logtrial.labels.truth import truth_incidents

@@ -52,12 +52,36 @@ class Tracker:
         found = self.client.search_runs([self.experiment_id], filter_string=f"tags.config_hash = '{run_id}'")
         return [r.info.run_id for r in found]
 
+    def reconcile(self, store, run_ids: list[str]) -> tuple[int, int]:
+        """After an interruption: close and remove rows left RUNNING, and log finished runs MLflow missed.
+
+        Returns (rows closed, records added). The run store is the record of what ran; MLflow follows it.
+        """
+        from mlflow.entities import ViewType
+
+        stale = self.client.search_runs([self.experiment_id], filter_string="attributes.status = 'RUNNING'",
+                                        run_view_type=ViewType.ALL, max_results=50_000)
+        for r in stale:
+            self.client.set_terminated(r.info.run_id, status="KILLED")
+            if r.info.lifecycle_stage != "deleted":
+                self.client.delete_run(r.info.run_id)
+        present = {r.data.tags.get("config_hash") for r in self.client.search_runs(
+            [self.experiment_id], run_view_type=ViewType.ACTIVE_ONLY, max_results=50_000)}
+        added = 0
+        for run_id in run_ids:
+            if run_id not in present and store.finished(run_id):
+                self.log(json.loads(store.path(run_id).read_text()), store)
+                added += 1
+        return len(stale), added
+
     def log(self, record: dict, store) -> None:
         """Record one run (params, metrics, config hash tag, artifacts) unless already recorded."""
         from mlflow.entities import Metric, Param, RunTag
 
         for old in self.existing(record["run_id"]):
-            # A finished record replaces an earlier failed attempt of the same config.
+            # A finished record replaces an earlier failed (or interrupted) attempt of the same config.
+            if self.client.get_run(old).info.status == "RUNNING":
+                self.client.set_terminated(old, status="KILLED")
             self.client.delete_run(old)
         cfg = record["config"]
         name = f"{cfg['detector'].get('label') or cfg['detector']['name']} | {cfg['noise'].get('name', 'clean')} | seed {cfg['seed']}"
