@@ -87,6 +87,8 @@ def cmd_fetch(args: argparse.Namespace) -> int:
     if failed:
         print(f"logtrial fetch: {len(failed)} of {len(outcomes)} dataset(s) failed: "
               f"{', '.join(o.name for o in failed)}", file=sys.stderr)
+        for o in failed:
+            print(f"  {o.name}: {o.detail}", file=sys.stderr)
         return max(o.exit_code for o in failed)
     return 0
 

@@ -234,7 +234,7 @@ def test_fetch_several_over_http_matches_the_pins(served, home: Path, loghub_dir
     handler.seen.clear()
     assert main(["fetch", "hdfs-2k", "bgl-2k"]) == 0
     out = capsys.readouterr().out
-    assert "hdfs-2k: present, verified against the lock:" in out and "bgl-2k: present," in out and "2 present" in out
+    assert "hdfs-2k: already present" in out and "bgl-2k: already present" in out and "2 present" in out
     assert handler.seen == []
 
 
