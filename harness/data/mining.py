@@ -222,6 +222,21 @@ class DrainMiner:
             self._counts[:n_templates] += np.bincount(out, minlength=n_templates)
         return out
 
+    def add_many_masked(self, masked: Sequence[str]) -> np.ndarray:
+        """Assign contents already masked (by `mask_patterns()`, in order) in order; return template ids as int32."""
+        with _gc_paused():
+            ids = self._assign_all_masked(masked)
+        out = np.array(ids, dtype=np.int32)
+        n_templates = len(self._templates)
+        self._grow_counts(n_templates)
+        if len(out):
+            self._counts[:n_templates] += np.bincount(out, minlength=n_templates)
+        return out
+
+    def mask_patterns(self) -> list[str]:
+        """Return the mask regexes, in the order they are applied."""
+        return list(self._mask_texts)
+
     def templates(self) -> list[str]:
         """Return the current template text per id (wildcard `<*>`)."""
         return [" ".join(t) for t in self._templates]
@@ -263,6 +278,22 @@ class DrainMiner:
                 if len(by_raw) >= _CACHE_LIMIT:
                     by_raw.clear()
                 by_raw[content] = entry
+            if entry[1].version == entry[2] and entry[3] == self._routing_version:
+                append(entry[0])
+            else:
+                append(resolve(entry))
+        return ids
+
+    def _assign_all_masked(self, masked: Sequence[str]) -> list[int]:
+        """Return the template id of each masked content (the raw-content cache is skipped; answers are the same)."""
+        masked_get = self._by_masked.get
+        new_entry, resolve = self._new_entry, self._resolve
+        ids: list[int] = []
+        append = ids.append
+        for content in masked:
+            entry = masked_get(content)
+            if entry is None:
+                entry = new_entry(content)
             if entry[1].version == entry[2] and entry[3] == self._routing_version:
                 append(entry[0])
             else:
