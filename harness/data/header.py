@@ -7,6 +7,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 from logtrial.data.registry import LineFormat
 
 
@@ -74,10 +75,10 @@ class ParsedChunk:
 
     line: np.ndarray
     ts: np.ndarray
-    content: list
-    entity: list | str
-    group: list | str | None
-    tag: list | str
+    content: list | pa.Array
+    entity: list | pa.Array | str
+    group: list | pa.Array | str | None
+    tag: list | pa.Array | str
 
     def __len__(self) -> int:
         return len(self.line)
@@ -158,8 +159,12 @@ class LineParser:
 
 
 def take_rows(chunk: ParsedChunk, keep: np.ndarray) -> ParsedChunk:
-    """The rows of a chunk at the given positions."""
-    pick = (lambda v: [v[i] for i in keep] if isinstance(v, list) else v)  # noqa: E731
+    """The rows of a chunk at the given positions (columns may be lists or Arrow arrays)."""
+    where = pa.array(keep)
+
+    def pick(v):
+        return [v[i] for i in keep] if isinstance(v, list) else v.take(where) if isinstance(v, pa.Array) else v
+
     return ParsedChunk(chunk.line[keep], chunk.ts[keep], pick(chunk.content), pick(chunk.entity), pick(chunk.group),
                   pick(chunk.tag))
 

@@ -355,10 +355,11 @@ def _write_table(
                 chunk = res.chunk
                 if chunk is not None:
                     chunk.line += offset
+                    contents = chunk.content.to_pylist() if isinstance(chunk.content, pa.Array) else chunk.content
                     if res.masked:
-                        events = np.asarray(miner.add_many_masked(chunk.content), dtype=np.int32)
+                        events = np.asarray(miner.add_many_masked(contents), dtype=np.int32)
                     else:
-                        events = np.asarray(miner.add_many(chunk.content), dtype=np.int32)
+                        events = np.asarray(miner.add_many(contents), dtype=np.int32)
                     writer.write_table(_arrow_chunk(chunk, events))
                     counters.rows += len(chunk)
                 bar.update(res.n_bytes)
@@ -371,7 +372,9 @@ def _arrow_chunk(chunk: ParsedChunk, events: np.ndarray) -> pa.Table:
     """One chunk of the event table as Arrow, in the table's schema."""
     n = len(chunk)
 
-    def text(v: list | str | None) -> pa.Array:
+    def text(v: list | pa.Array | str | None) -> pa.Array:
+        if isinstance(v, pa.Array):
+            return v
         return pa.array(v, type=pa.string()) if isinstance(v, list) else pa.nulls(n, pa.string()).fill_null(v) \
             if v is not None else pa.nulls(n, pa.string())
 

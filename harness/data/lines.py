@@ -5,6 +5,9 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
+import pyarrow as pa
+
 # A range ends at the end of the line holding its (RANGE_BYTES + 1)-th byte: the
 # same cut that ``file.readlines(RANGE_BYTES)`` makes, so ranges are the chunks ingest
 # has always used (a clock-change hour is inferred within one chunk).
@@ -29,7 +32,7 @@ class ByteRange:
 class DecodedRange:
     """The lines of one range, and where its bytes were not valid in the encoding (1-based within the range)."""
 
-    lines: list[str]
+    lines: list[str] | pa.StringArray
     bad_lines: list[int] = field(default_factory=list)
     strict_error: tuple[int, int] | None = None  # (line within the range, byte within the line)
 
@@ -56,14 +59,26 @@ def _is_utf8(encoding: str) -> bool:
     return encoding.replace("-", "").replace("_", "").lower() in ("utf8", "utf8sig")
 
 
-def decode_range(rng: ByteRange, encoding: str, strict: bool) -> DecodedRange:
-    """Decode one byte range into lines without newlines (a trailing CR is dropped); bad bytes are replaced and listed."""
+def decode_range(rng: ByteRange, encoding: str, strict: bool, column: bool = False) -> DecodedRange:
+    """Decode one byte range into lines without newlines (a trailing CR is dropped); bad bytes are replaced and listed.
+
+    With ``column``, valid UTF-8 comes back as an Arrow string array cut straight from the
+    bytes (no Python string per line); anything else as a list of str.
+    """
     with open(rng.path, "rb") as fh:
         fh.seek(rng.start)
         blob = fh.read(rng.size)
     if rng.start == 0 and _is_utf8(encoding) and blob.startswith(b"\xef\xbb\xbf"):
         blob = blob[3:]  # a UTF-8 byte-order mark is not part of the first line
     out = DecodedRange(lines=[])
+    if column and _is_utf8(encoding) and len(blob) < 2**31:
+        try:
+            blob.decode("utf-8")
+        except UnicodeDecodeError:
+            pass
+        else:
+            out.lines = _line_column(blob)
+            return out
     try:
         lines = blob.decode(encoding).split("\n")
         if lines and lines[-1] == "":
@@ -85,3 +100,22 @@ def decode_range(rng: ByteRange, encoding: str, strict: bool) -> DecodedRange:
             lines.append(s)
     out.lines = [s[:-1] if s.endswith("\r") else s for s in lines]
     return out
+
+
+def _line_column(blob: bytes) -> pa.StringArray:
+    """Valid UTF-8 bytes as an Arrow array of lines: split at LF, LF dropped, one CR before it (or at the end) dropped."""
+    buf = np.frombuffer(blob, dtype=np.uint8)
+    if len(buf) == 0:
+        return pa.array([], type=pa.string())
+    newline = np.flatnonzero(buf == 10)
+    ends = newline if (len(buf) and buf[-1] == 10) else np.r_[newline, len(buf)]
+    starts = np.r_[0, newline + 1][: len(ends)]
+    cr = (ends > starts) & (buf[np.maximum(ends - 1, 0)] == 13)
+    keep = np.ones(len(buf), dtype=bool)
+    keep[newline] = False
+    keep[ends[cr] - 1] = False
+    lengths = ends - starts - cr
+    offsets = np.zeros(len(ends) + 1, dtype=np.int32)
+    np.cumsum(lengths, out=offsets[1:])
+    data = buf[keep]
+    return pa.StringArray.from_buffers(len(ends), pa.py_buffer(offsets), pa.py_buffer(data))

@@ -10,7 +10,8 @@ from dataclasses import dataclass, field
 from itertools import islice
 from typing import Callable, Iterable, Iterator, TypeVar
 
-from logtrial.data.header import LineParser, ParsedChunk
+from logtrial.data.header import ParsedChunk
+from logtrial.data.header_columns import ColumnParser
 from logtrial.data.lines import ByteRange, decode_range
 from logtrial.data.masking import mask_contents
 from logtrial.data.registry import LineFormat
@@ -45,10 +46,10 @@ class RangeResult:
 
 def parse_range(job: RangeJob) -> RangeResult:
     """Decode, split and (when asked) mask one byte range."""
-    decoded = decode_range(job.rng, job.fmt.encoding, job.strict)
+    decoded = decode_range(job.rng, job.fmt.encoding, job.strict, column=True)
     if decoded.strict_error is not None:
         return RangeResult(0, job.rng.size, None, strict_error=decoded.strict_error)
-    chunk, rejects = LineParser(job.fmt, job.path_group).parse(decoded.lines, 1)
+    chunk, rejects = ColumnParser(job.fmt, job.path_group).parse(decoded.lines, 1)
     masked = job.masks is not None
     if chunk is not None and masked:
         chunk.content = mask_contents(chunk.content, job.masks)
