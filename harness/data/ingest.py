@@ -33,6 +33,7 @@ QUARANTINE_TEXT_CHARS = 500
 MAX_REJECTED_SHARE = 0.5  # of all lines, checked from SHARE_FROM_LINES lines on and at the end (common practice)
 SHARE_FROM_LINES = 10_000
 MAX_QUARANTINE_BYTES = 256 * 2**20
+SMALL_RANGE_BYTES = 1 << 22
 _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,127}")
 _TMP_MARK = ".tmp-"
 _OWNER = "owner.json"
@@ -131,7 +132,7 @@ def ingest_files(
     workers: int | None = None,
     max_rejected_share: float = MAX_REJECTED_SHARE,
     max_quarantine_bytes: int = MAX_QUARANTINE_BYTES,
-    range_bytes: int = RANGE_BYTES,
+    range_bytes: int | None = None,
 ) -> IngestResult:
     """Build (or reuse) the event table, template dictionary and manifest for the given log files."""
     check_name(name)
@@ -176,7 +177,8 @@ def ingest_files(
         counters = _Counters()
         caps = _Caps(max_rejected_share, max_quarantine_bytes)
         _write_table(files, fmt, miner, tmp, counters, strict, progress, caps,
-                     default_workers() if workers is None else max(1, int(workers)), range_bytes)
+                     default_workers() if workers is None else max(1, int(workers)),
+                     range_bytes or default_range_bytes(fmt))
         if counters.rows == 0:
             first = next(iter(counters.reasons), "no lines")
             raise DataError(
@@ -217,6 +219,19 @@ def ingest_files(
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", manifest, cached=False)
+
+
+def default_range_bytes(fmt: LineFormat) -> int:
+    """Bytes per parsed range: small enough to keep workers busy, unless local times are inferred per chunk.
+
+    Local wall-clock times in a zone with clock changes are told apart by their order within
+    one chunk, so such formats keep the chunks ingest always used (RANGE_BYTES); for every
+    other format the cut changes nothing in the output.
+    """
+    ts = fmt.timestamp
+    if ts is None or ts.unit is not None or ts.tz == "UTC" or "%z" in (ts.format or "") or "%Z" in (ts.format or ""):
+        return SMALL_RANGE_BYTES
+    return RANGE_BYTES
 
 
 def cache_damage(folder: Path, manifest: dict) -> str | None:
