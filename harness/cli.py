@@ -84,7 +84,10 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 
     home = home_dir()
     opts = dict(force=args.force, strict=args.strict, progress=True, workers=args.workers,
-                max_rejected_share=args.max_rejected_share, max_quarantine_bytes=int(args.max_quarantine_mb * 2**20))
+                max_rejected_share=args.max_rejected_share, max_quarantine_bytes=int(args.max_quarantine_mb * 2**20),
+                engine=args.engine, scheduler=args.scheduler)
+    if args.scheduler and args.engine != "dask":
+        raise ConfigError("--scheduler: only used with --engine dask")
     if args.file:
         if not args.format:
             raise LogtrialError("ingest --file needs --format FILE.yaml (a `regex` with a `content` group)")
@@ -256,6 +259,11 @@ def build_parser() -> argparse.ArgumentParser:
                     help="stop when more than this share of lines is rejected (default 0.5)")
     sp.add_argument("--max-quarantine-mb", type=float, default=256.0, metavar="MB",
                     help="stop when the quarantine file of rejected lines passes this size (default 256)")
+    sp.add_argument("--engine", choices=["local", "dask"], default="local",
+                    help="local: worker processes on this machine, sequential Drain (default); dask: parse, mask "
+                         "and match on a Dask cluster against templates learnt on the first 10%% of the log")
+    sp.add_argument("--scheduler", metavar="ADDRESS",
+                    help="with --engine dask: a running Dask scheduler (the log files must be readable by its workers)")
     registry_opt(sp)
 
     sp = verb("parse-score", cmd_parse_score, "template grouping accuracy against ground-truth templates",

@@ -13,6 +13,7 @@ import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Iterator
 
 import numpy as np
 import pandas as pd
@@ -22,7 +23,8 @@ from logtrial import __version__
 from logtrial.data.header import ParsedChunk, _strptime, path_group  # noqa: F401  (_strptime: tests)
 from logtrial.data.lines import RANGE_BYTES, byte_ranges
 from logtrial.data.mining import DrainMiner, TemplateMiner, registry_miner
-from logtrial.data.pipeline import RangeJob, default_workers, ordered_map, parse_range
+from logtrial.data.distributed import LEARN_SHARE, dask_map, learn_count
+from logtrial.data.pipeline import RangeJob, RangeResult, default_workers, ordered_map, parse_range
 from logtrial.data.registry import LineFormat, Miner
 from logtrial.errors import ConfigError, DataError
 
@@ -74,6 +76,7 @@ class _Counters:
     bad_encoding_lines: int = 0
     first_bad_encoding: list = field(default_factory=list)
     reasons: dict = field(default_factory=dict)
+    events: list = field(default_factory=list)  # template ids per chunk (distributed ingest counts from them)
 
 
 def file_sha256(path: Path, block: int = 1 << 20) -> str:
@@ -93,7 +96,7 @@ def _relative_names(files: list[Path]) -> list[str]:
     return [p.resolve().relative_to(root).as_posix() for p in files]
 
 
-def cache_key(files: list[Path], fmt: LineFormat, miner: Miner) -> tuple[str, dict]:
+def cache_key(files: list[Path], fmt: LineFormat, miner: Miner, engine: str = "local") -> tuple[str, dict]:
     """Hash of everything an event table depends on: input bytes, format, miner settings, code version."""
     inputs = [{"file": rel, "size": p.stat().st_size, "sha256": file_sha256(p)}
               for p, rel in zip(files, _relative_names(files))]
@@ -104,6 +107,8 @@ def cache_key(files: list[Path], fmt: LineFormat, miner: Miner) -> tuple[str, di
         "table_version": TABLE_VERSION,
         "code_version": __version__,
     }
+    if engine == "dask":  # two-pass mining: a table of its own (sequential tables keep their keys)
+        basis["engine"] = {"kind": "dask", "learn_share": LEARN_SHARE}
     digest = hashlib.sha256(json.dumps(basis, sort_keys=True).encode()).hexdigest()
     return digest, basis
 
@@ -133,8 +138,14 @@ def ingest_files(
     max_rejected_share: float = MAX_REJECTED_SHARE,
     max_quarantine_bytes: int = MAX_QUARANTINE_BYTES,
     range_bytes: int | None = None,
+    engine: str = "local",
+    scheduler: str | None = None,
 ) -> IngestResult:
-    """Build (or reuse) the event table, template dictionary and manifest for the given log files."""
+    """Build (or reuse) the event table, template dictionary and manifest for the given log files.
+
+    ``engine="dask"`` mines in two passes on a Dask cluster (see logtrial.data.distributed):
+    template ids may differ slightly from sequential Drain, so such tables are cached apart.
+    """
     check_name(name)
     if not 0.0 <= max_rejected_share <= 1.0:
         raise ConfigError(f"max_rejected_share: expected a share between 0 and 1, got {max_rejected_share!r}")
@@ -148,7 +159,11 @@ def ingest_files(
     if len(empty) == len(files):
         raise DataError(f"{empty[0]}: file is empty (expected log lines)")
     files = [f for f in files if f not in empty]
-    key, basis = cache_key(files, fmt, miner_settings)
+    if engine not in ("local", "dask"):
+        raise ConfigError(f"engine: expected 'local' or 'dask', got {engine!r}")
+    if engine == "dask" and miner is not None and not isinstance(miner, DrainMiner):
+        raise ConfigError("engine dask: needs the built-in drain miner (templates are matched on the cluster)")
+    key, basis = cache_key(files, fmt, miner_settings, engine)
     basis["empty_files"] = [f.name for f in empty]
     out_root = Path(out_root)
     folder = out_root / name / key[:16]
@@ -178,7 +193,7 @@ def ingest_files(
         caps = _Caps(max_rejected_share, max_quarantine_bytes)
         _write_table(files, fmt, miner, tmp, counters, strict, progress, caps,
                      default_workers() if workers is None else max(1, int(workers)),
-                     range_bytes or default_range_bytes(fmt))
+                     range_bytes or default_range_bytes(fmt), engine, scheduler)
         if counters.rows == 0:
             first = next(iter(counters.reasons), "no lines")
             raise DataError(
@@ -186,9 +201,12 @@ def ingest_files(
                 "expected at least one line with the format's fields"
             )
         caps.check_share(files[0], counters, final=True)
+        n_templates = len(miner.templates())
+        counts = (np.bincount(np.concatenate(counters.events), minlength=n_templates) if engine == "dask"
+                  else np.asarray(miner.counts(), dtype=np.int64))
         templates = pd.DataFrame(
-            {"event": np.arange(len(miner.templates()), dtype=np.int32), "template": miner.templates(),
-             "count": np.asarray(miner.counts(), dtype=np.int64)}
+            {"event": np.arange(n_templates, dtype=np.int32), "template": miner.templates(),
+             "count": np.asarray(counts, dtype=np.int64)}
         )
         templates.to_csv(tmp / "templates.csv", index=False)
         manifest = {
@@ -316,7 +334,7 @@ class _Caps:
 
 def _write_table(
     files: list[Path], fmt: LineFormat, miner: TemplateMiner, out: Path, counters: _Counters, strict: bool,
-    progress: bool, caps: _Caps, workers: int, range_bytes: int,
+    progress: bool, caps: _Caps, workers: int, range_bytes: int, engine: str = "local", scheduler: str | None = None,
 ) -> None:
     """Stream all files range by range into events.parquet and quarantine.tsv inside ``out``.
 
@@ -332,8 +350,21 @@ def _write_table(
     plan = [(path, rel, byte_ranges(path, range_bytes)) for path, rel in zip(files, names)]
     if sum(len(r) for _, _, r in plan) < 2:
         workers = 1  # one range: nothing to run side by side
-    jobs = (RangeJob(rng, fmt, path_group(rel, fmt), strict, masks) for path, rel, ranges in plan for rng in ranges)
+    jobs = [RangeJob(rng, fmt, path_group(rel, fmt), strict, masks) for path, rel, ranges in plan for rng in ranges]
     owners = [(path, rel, i == 0) for path, rel, ranges in plan for i in range(len(ranges))]
+    if engine == "dask":
+        if masks is None:
+            raise ConfigError("engine dask: needs the built-in drain miner (templates are matched on the cluster)")
+        learn = learn_count(len(jobs))
+
+        def staged() -> Iterator[RangeResult]:
+            yield from ordered_map(parse_range, jobs[:learn], 1)
+            # the learnt templates are frozen only now: every learn range has been mined by the loop below
+            yield from dask_map(jobs[learn:], miner.frozen_copy(), scheduler, workers)
+
+        results: Iterator[RangeResult] = staged()
+    else:
+        results = ordered_map(parse_range, jobs, workers)
     writer = pq.ParquetWriter(out / "events.parquet", EVENT_SCHEMA, compression="zstd")
     written = 0
     with open(out / "quarantine.tsv", "w", encoding="utf-8") as qf:
@@ -341,7 +372,7 @@ def _write_table(
         qf.write("line\tfile\tfile_line\treason\ttext\n")
         try:
             file_start = 0
-            for (path, rel, first_of_file), res in zip(owners, ordered_map(parse_range, jobs, workers)):
+            for (path, rel, first_of_file), res in zip(owners, results):
                 if first_of_file:
                     file_start = counters.lines
                 offset = counters.lines  # lines before this range
@@ -371,11 +402,18 @@ def _write_table(
                 if chunk is not None:
                     chunk.line += offset
                     contents = chunk.content.to_pylist() if isinstance(chunk.content, pa.Array) else chunk.content
-                    if res.masked:
+                    if res.matched is not None:
+                        events = res.matched.astype(np.int32, copy=True)
+                        residue = np.flatnonzero(events < 0)
+                        if len(residue):
+                            events[residue] = miner.add_many_masked([contents[i] for i in residue])
+                    elif res.masked:
                         events = np.asarray(miner.add_many_masked(contents), dtype=np.int32)
                     else:
                         events = np.asarray(miner.add_many(contents), dtype=np.int32)
                     writer.write_table(_arrow_chunk(chunk, events))
+                    if engine == "dask":
+                        counters.events.append(events)
                     counters.rows += len(chunk)
                 bar.update(res.n_bytes)
         finally:

@@ -46,6 +46,7 @@ Speed comes from the following, none of which changes a result:
 
 from __future__ import annotations
 
+import copy
 import gc
 import operator
 import re
@@ -232,6 +233,46 @@ class DrainMiner:
         if len(out):
             self._counts[:n_templates] += np.bincount(out, minlength=n_templates)
         return out
+
+    def match_masked_many(self, masked: Sequence[str]) -> np.ndarray:
+        """Return the template each masked content would join, changing nothing (-1 where none); int32.
+
+        Drain's routing and scoring with every template frozen: no template is created or
+        generalised, so contents may be matched in any order or in parallel.
+        """
+        out = np.full(len(masked), -1, dtype=np.int32)
+        by_length, route_levels, needed_equal = self._by_length, self._route_levels, self._needed_equal
+        patterns, wild = self._patterns, self._wild
+        for i, content in enumerate(masked):
+            tokens = self._tokenise(content)
+            node = by_length.get(len(tokens))
+            if node is None:
+                continue
+            if not tokens:
+                out[i] = node.clusters[0]
+                continue
+            for token in tokens[: min(route_levels, len(tokens)) - 1]:
+                child = node.children.get(token)
+                if child is None:
+                    child = node.children.get(WILDCARD)
+                    if child is None:
+                        break
+                node = child
+            else:
+                best, best_equal, best_wild = -1, -1, -1
+                for cid in node.clusters:
+                    equal = sum(map(operator.eq, tokens, patterns[cid]))
+                    if equal > best_equal or (equal == best_equal and wild[cid] > best_wild):
+                        best, best_equal, best_wild = cid, equal, wild[cid]
+                if best >= 0 and best_equal >= needed_equal(len(tokens)):
+                    out[i] = best
+        return out
+
+    def frozen_copy(self) -> "DrainMiner":
+        """A copy without the answer caches, small enough to ship to other processes for `match_masked_many`."""
+        clone = copy.copy(self)
+        clone._by_raw, clone._by_masked, clone._by_shape = {}, {}, {}
+        return clone
 
     def mask_patterns(self) -> list[str]:
         """Return the mask regexes, in the order they are applied."""

@@ -10,6 +10,8 @@ from dataclasses import dataclass, field
 from itertools import islice
 from typing import Callable, Iterable, Iterator, TypeVar
 
+import numpy as np
+
 from logtrial.data.header import ParsedChunk
 from logtrial.data.header_columns import ColumnParser
 from logtrial.data.lines import ByteRange, decode_range
@@ -42,6 +44,7 @@ class RangeResult:
     bad_lines: list[int] = field(default_factory=list)
     strict_error: tuple[int, int] | None = None
     masked: bool = False
+    matched: np.ndarray | None = None  # template ids against frozen templates (-1: none), distributed ingest only
 
 
 def parse_range(job: RangeJob) -> RangeResult:
