@@ -115,10 +115,10 @@ def cache_key(files: list[Path], fmt: LineFormat, miner: Miner, engine: str = "l
 
 def check_name(name: str) -> str:
     """A dataset name that stays one folder inside the data home; ConfigError otherwise."""
-    if not isinstance(name, str) or not _NAME.fullmatch(name) or ".." in name:
+    if not isinstance(name, str) or not _NAME.fullmatch(name):
         raise ConfigError(
             f"dataset name {name!r}: expected letters, digits, '.', '_' or '-' (starting with a letter or digit, "
-            "at most 128 characters, no '..'); a name must not hold a path"
+            "at most 128 characters); a name must not hold a path"
         )
     return name
 
