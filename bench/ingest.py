@@ -240,11 +240,19 @@ from pathlib import Path
 from logtrial.data.ingest import ingest_files
 from logtrial.data.registry import get_entry, load_registry
 import pyarrow.parquet, pandas, numpy
+
+def status(key):
+    # this process's own figures (ru_maxrss would carry the parent's peak across fork and exec)
+    for line in open("/proc/self/status"):
+        if line.startswith(key + ":"):
+            return int(line.split()[1])
+    return 0
+
 entry = get_entry(sys.argv[1], load_registry())
-before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+before = status("VmHWM")
 res = ingest_files("bench-rss", [Path(sys.argv[2])], entry.format, entry.miner, Path(sys.argv[3]), force=True,
                    workers=int(sys.argv[4]))
-after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+after = status("VmHWM")
 kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
 print(before, after, kids, res.manifest["rows"])
 """
@@ -261,7 +269,7 @@ def peak_rss(n_lines: int, seed: int, workdir: Path, workers: int, system: str =
     ).stdout.split()
     before, after, kids, rows = (int(x) for x in out[:4])
     print(f"  {rows:>10,d} {system} lines: main process peak {after / 1024:.0f} MiB ({before / 1024:.0f} MiB after "
-          f"imports), largest worker peak {kids / 1024:.0f} MiB")
+          f"imports), largest worker peak {kids / 1024:.0f} MiB (workers are forked from the main process)")
     path.unlink()
 
 
@@ -331,7 +339,15 @@ def main(argv: Sequence[str] | None = None) -> None:
     parser.add_argument("--rss-lines", type=int, nargs="*", default=[1_000_000, 5_000_000],
                         help="log sizes of the peak-memory ingests (default 1M and 5M; none skips them)")
     parser.add_argument("--workdir", type=Path, default=None, help="where to write the log (default: a temp dir)")
+    parser.add_argument("--rss-only", action="store_true", help="only the peak-memory ingests")
     args = parser.parse_args(argv)
+    if args.rss_only:
+        logging.disable(logging.INFO)
+        with tempfile.TemporaryDirectory(prefix="logtrial-bench-") as tmp:
+            print("peak RSS (fresh process per size; flat in lines when the peaks are close):")
+            for n_rss in args.rss_lines:
+                peak_rss(n_rss, args.seed, args.workdir or Path(tmp), args.workers)
+        return
     n_lines = 100_000 if args.quick else args.lines
     repeat = 1 if args.quick else args.repeat
     rss = [50_000, 200_000] if args.quick else args.rss_lines

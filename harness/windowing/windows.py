@@ -306,7 +306,7 @@ def time_windows(
     s, d = size.value, step.value
     c = codes[order]
     t = ts[order]
-    del ts
+    del ts, codes
     w_code, k = _nonempty_windows(c, t, s, d)
     starts = k * d
     del k
@@ -324,15 +324,19 @@ def _nonempty_windows(c: np.ndarray, t: np.ndarray, s: int, d: int) -> tuple[np.
     if len(t) == 0:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     k_hi = np.floor_divide(t, d)
-    k_lo = np.floor_divide(t - s, d) + 1
-    first = np.ones(len(t), dtype=bool)
-    first[1:] = c[1:] != c[:-1]
-    prev_hi = np.empty_like(k_hi)
-    prev_hi[0] = 0
-    prev_hi[1:] = k_hi[:-1]
-    from_k = np.where(first, k_lo, np.maximum(k_lo, prev_hi + 1))
-    del prev_hi, first
-    new = np.maximum(k_hi - from_k + 1, 0)
+    from_k = t - s
+    np.floor_divide(from_k, d, out=from_k)
+    from_k += 1  # k_lo: the first window holding the event
+    # after the entity's previous event, only windows past that event's k_hi are new
+    later = k_hi[:-1] + 1
+    np.maximum(later, from_k[1:], out=later)
+    same = c[1:] == c[:-1]
+    np.copyto(from_k[1:], later, where=same)
+    del later, same
+    new = k_hi - from_k
+    del k_hi
+    new += 1
+    np.maximum(new, 0, out=new)
     total = int(new.sum())
     has = np.flatnonzero(new)
     new, from_k = new[has], from_k[has]
