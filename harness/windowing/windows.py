@@ -450,28 +450,21 @@ def count_windows(events: pd.DataFrame, vocab_size: int, n: int, step: int | Non
     if m == 0:
         info = {"kind": "count", "n": n, "step": step}
         return _assemble(c, c, order, ev, None, None, ts, vocab_size, info, entity=(names, c))
+    # each window is a slice of the entity's run in the (entity, time) order
     first = np.flatnonzero(np.r_[True, c[1:] != c[:-1]])
-    size_per_ent = np.diff(np.r_[first, m])
-    grp_start = np.repeat(first, size_per_ent)
-    p = np.arange(m, dtype=np.int64) - grp_start
-    cnt = np.repeat(size_per_ent, size_per_ent).astype(np.int64)
+    cnt = np.diff(np.r_[first, m])
     j_last = np.where(cnt > n, np.minimum((cnt - 1) // step, 1 + (cnt - n - 1) // step), 0)
-    k_lo = np.maximum(0, -((n - 1 - p) // step))  # ceil((p - n + 1) / step), at least 0
-    k_hi = np.minimum(p // step, j_last)
-    reps = np.maximum(k_hi - k_lo + 1, 0)
-    total = int(reps.sum())
-    cum = np.zeros(m + 1, dtype=np.int64)
-    np.cumsum(reps, out=cum[1:])
-    within = np.arange(total, dtype=np.int64) - np.repeat(cum[:-1], reps)
-    pos = np.repeat(np.arange(m, dtype=np.int64), reps)
-    k = k_lo[pos] + within
-    k_span = int(k.max()) + 1 if total else 1
-    o2 = np.argsort(c[pos].astype(np.int64) * k_span + k, kind="stable")  # (entity, k, time) order; k_span <= m
-    k, pos = k[o2], pos[o2]
-    pair_ev = order[pos]
+    n_win = j_last + 1
+    cum = np.zeros(len(n_win) + 1, dtype=np.int64)
+    np.cumsum(n_win, out=cum[1:])
+    run = np.repeat(np.arange(len(first)), n_win)
+    j = np.arange(int(cum[-1]), dtype=np.int64) - cum[:-1][run]
+    lo = first[run] + j * step
+    hi = np.minimum(lo + n, first[run] + cnt[run])
+    del run, j
+    t = ts[order]
     info = {"kind": "count", "n": n, "step": step}
-    pair_codes = c[pos]
-    return _assemble(pair_codes, k, pair_ev, ev, None, None, ts, vocab_size, info, entity=(names, pair_codes))
+    return _assemble_slices(c[lo], t[lo], t[hi - 1] + _ONE_US, lo, hi, order, ev, names, vocab_size, info)
 
 
 # ---------------------------------------------------------------------------
