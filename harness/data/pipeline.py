@@ -72,7 +72,7 @@ def ordered_map(fn: Callable[[J], R], jobs: Iterable[J], workers: int, ahead: in
 
     The bound keeps memory flat when the consumer (the miner) is slower than the workers.
     """
-    if workers <= 1:
+    if workers <= 1 or mp.current_process().daemon:  # a daemonic process (e.g. a Dask worker) may not fork
         for job in jobs:
             yield fn(job)
         return
