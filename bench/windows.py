@@ -1,27 +1,33 @@
-"""Benchmark: windows per second for fixed, sliding and session windows on 1M and 5M synthetic events.
+"""Benchmark: windowing speed and memory for fixed, sliding, session and count windows on 1M and 5M events.
 
 Usage: python bench/windows.py [--quick] [--sizes 1000000 5000000] [--seed 0]
 
-Prints one line per (events, kind): seconds, windows built, windows/s, events/s,
-and the process's peak resident memory so far (resource.getrusage).
+The synthetic event table is generated once and written to Parquet; each (events,
+kind) is then measured in a fresh process that reads the table, resets the kernel's
+peak-RSS mark (Linux ``/proc/self/clear_refs``) and builds the windows. So the memory
+figures are those of windowing alone: ``peak`` is the process's peak resident set
+while windowing (the event table included), ``growth`` is that peak minus the resident
+set just before. Times are CPU seconds of the child (steadier than wall time on a
+shared machine). Target: peak <= 600 MiB for 5M-event sliding windows.
 """
 
 from __future__ import annotations
 
 import argparse
-import resource
+import json
+import subprocess
 import sys
-import time
+import tempfile
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-
-from logtrial.windowing.windows import count_windows, session_windows, time_windows  # noqa: E402
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
 
 VOCAB = 300
+KINDS = ("fixed 1h", "sliding 1h/15min", "session", "count 100/50")
 
 
 def synthetic_events(n: int, seed: int, n_entities: int = 200, days: int = 30) -> pd.DataFrame:
@@ -41,9 +47,47 @@ def synthetic_events(n: int, seed: int, n_entities: int = 200, days: int = 30) -
     )
 
 
-def peak_rss_mib() -> float:
-    """Peak resident set size of this process in MiB (Linux reports KiB)."""
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+_CHILD = r"""
+import json, resource, sys, time
+import pandas as pd
+from logtrial.windowing.windows import count_windows, session_windows, time_windows
+
+def status(key):
+    for line in open("/proc/self/status"):
+        if line.startswith(key + ":"):
+            return int(line.split()[1]) / 1024  # kB -> MiB
+    return float("nan")
+
+path, kind, vocab = sys.argv[1], sys.argv[2], int(sys.argv[3])
+ev = pd.read_parquet(path)
+build = {
+    "fixed 1h": lambda: time_windows(ev, vocab, pd.Timedelta("1h")),
+    "sliding 1h/15min": lambda: time_windows(ev, vocab, pd.Timedelta("1h"), pd.Timedelta("15min")),
+    "session": lambda: session_windows(ev, vocab),
+    "count 100/50": lambda: count_windows(ev, vocab, 100, 50),
+}[kind]
+before = status("VmRSS")
+try:
+    with open("/proc/self/clear_refs", "w") as fh:
+        fh.write("5")  # reset the peak mark (VmHWM) to the current resident set
+    reset = True
+except OSError:
+    reset = False
+t = time.process_time()
+ws = build()
+seconds = time.process_time() - t
+peak = status("VmHWM")
+print(json.dumps({"seconds": seconds, "windows": len(ws), "before": before, "peak": peak, "reset": reset,
+                  "pairs": int(ws.seq_offsets[-1])}))
+"""
+
+
+def measure(path: Path, kind: str) -> dict:
+    """Window the table at `path` in a fresh process; return its figures."""
+    out = subprocess.run([sys.executable, "-c", _CHILD, str(path), kind, str(VOCAB)], check=True,
+                         capture_output=True, text=True, cwd=ROOT, env={"OMP_NUM_THREADS": "1",
+                                                                        **__import__("os").environ})
+    return json.loads(out.stdout.strip().splitlines()[-1])
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -52,27 +96,21 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--quick", action="store_true", help="200k events only (a few seconds)")
     ap.add_argument("--sizes", type=int, nargs="+", default=[1_000_000, 5_000_000])
     ap.add_argument("--seed", type=int, default=0)
+    ap.add_argument("--kinds", nargs="+", default=list(KINDS), choices=KINDS, metavar="KIND")
     args = ap.parse_args(argv)
     sizes = [200_000] if args.quick else args.sizes
-    kinds = {
-        "fixed 1h": lambda ev: time_windows(ev, VOCAB, pd.Timedelta("1h")),
-        "sliding 1h/15min": lambda ev: time_windows(ev, VOCAB, pd.Timedelta("1h"), pd.Timedelta("15min")),
-        "session": lambda ev: session_windows(ev, VOCAB),
-        "count 100/50": lambda ev: count_windows(ev, VOCAB, 100, 50),
-    }
-    print(f"{'events':>10} {'kind':<18} {'seconds':>8} {'windows':>10} {'windows/s':>12} {'events/s':>12} {'peak RSS MiB':>13}")
-    for n in sizes:
-        ev = synthetic_events(n, args.seed)
-        for name, build in kinds.items():
-            t = time.perf_counter()
-            ws = build(ev)
-            dt = time.perf_counter() - t
-            print(
-                f"{n:>10} {name:<18} {dt:>8.2f} {len(ws):>10} {len(ws) / dt:>12.0f} {n / dt:>12.0f} {peak_rss_mib():>13.0f}",
-                flush=True,
-            )
-            del ws
-        del ev
+    print(f"{'events':>10} {'kind':<18} {'CPU s':>7} {'windows':>10} {'pairs':>11} {'windows/s':>11} "
+          f"{'events/s':>11} {'before MiB':>10} {'peak MiB':>9} {'growth MiB':>10}")
+    with tempfile.TemporaryDirectory(prefix="logtrial-bench-windows-") as tmp:
+        for n in sizes:
+            path = Path(tmp) / f"events-{n}.parquet"
+            synthetic_events(n, args.seed).to_parquet(path)
+            for kind in args.kinds:
+                r = measure(path, kind)
+                note = "" if r["reset"] else "  (peak not reset: includes reading the table)"
+                print(f"{n:>10} {kind:<18} {r['seconds']:>7.2f} {r['windows']:>10} {r['pairs']:>11} "
+                      f"{r['windows'] / r['seconds']:>11.0f} {n / r['seconds']:>11.0f} {r['before']:>10.0f} "
+                      f"{r['peak']:>9.0f} {r['peak'] - r['before']:>10.0f}{note}", flush=True)
     return 0
 
 

@@ -111,7 +111,11 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     from logtrial.data.registry import format_from_file, get_entry, home_dir, miner_from_file
 
     home = home_dir()
-    opts = dict(force=args.force, strict=args.strict, progress=True)
+    opts = dict(force=args.force, strict=args.strict, progress=True, workers=args.workers,
+                max_rejected_share=args.max_rejected_share, max_quarantine_bytes=int(args.max_quarantine_mb * 2**20),
+                engine=args.engine, scheduler=args.scheduler)
+    if args.scheduler and args.engine != "dask":
+        raise ConfigError("--scheduler: only used with --engine dask")
     if args.dataset_name or args.incidents:
         return _ingest_and_register(args, home, opts)
     if args.file:
@@ -359,6 +363,17 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--mirror", metavar="DIR", help="local folder holding the files (default: LOGTRIAL_MIRROR)")
     sp.add_argument("--force", action="store_true", help="rebuild even when a cached table matches")
     sp.add_argument("--strict", action="store_true", help="stop at the first undecodable line instead of replacing")
+    sp.add_argument("--workers", type=int, default=None, metavar="N",
+                    help="processes that parse and mask in parallel (default: the number of cores)")
+    sp.add_argument("--max-rejected-share", type=float, default=0.5, metavar="SHARE",
+                    help="stop when more than this share of lines is rejected (default 0.5)")
+    sp.add_argument("--max-quarantine-mb", type=float, default=256.0, metavar="MB",
+                    help="stop when the quarantine file of rejected lines passes this size (default 256)")
+    sp.add_argument("--engine", choices=["local", "dask"], default="local",
+                    help="local: worker processes on this machine, sequential Drain (default); dask: parse, mask "
+                         "and match on a Dask cluster against templates learnt on the first 10%% of the log")
+    sp.add_argument("--scheduler", metavar="ADDRESS",
+                    help="with --engine dask: a running Dask scheduler (the log files must be readable by its workers)")
     registry_opt(sp)
 
     sp = verb("parse-score", cmd_parse_score, "template grouping accuracy against ground-truth templates",

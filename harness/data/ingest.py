@@ -7,8 +7,10 @@ import json
 import os
 import re
 import shutil
+import socket
 import sys
 import tempfile
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterator
@@ -18,14 +20,25 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 from logtrial import __version__
-from logtrial.data.mining import TemplateMiner, registry_miner
+from logtrial.data.header import ParsedChunk, _strptime, path_group  # noqa: F401  (_strptime: tests)
+from logtrial.data.lines import RANGE_BYTES, byte_ranges
+from logtrial.data.mining import DrainMiner, TemplateMiner, registry_miner
+from logtrial.data.distributed import LEARN_SHARE, dask_map, learn_count
+from logtrial.data.pipeline import RangeJob, RangeResult, default_workers, ordered_map, parse_range
 from logtrial.data.registry import LineFormat, Miner
-from logtrial.errors import DataError
+from logtrial.errors import ConfigError, DataError
 
 # Bump when the event-table layout or parsing rules change: old caches are then rebuilt.
 TABLE_VERSION = 1
-CHUNK_LINES = 200_000
 QUARANTINE_TEXT_CHARS = 500
+# Caps on rejected lines (a decompression bomb or a wrong format must not fill the disk).
+MAX_REJECTED_SHARE = 0.5  # of all lines, checked from SHARE_FROM_LINES lines on and at the end (common practice)
+SHARE_FROM_LINES = 10_000
+MAX_QUARANTINE_BYTES = 256 * 2**20
+SMALL_RANGE_BYTES = 1 << 22
+_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,127}")
+_TMP_MARK = ".tmp-"
+_OWNER = "owner.json"
 
 EVENT_SCHEMA = pa.schema(
     [
@@ -63,6 +76,7 @@ class _Counters:
     bad_encoding_lines: int = 0
     first_bad_encoding: list = field(default_factory=list)
     reasons: dict = field(default_factory=dict)
+    events: list = field(default_factory=list)  # template ids per chunk (distributed ingest counts from them)
 
 
 def file_sha256(path: Path, block: int = 1 << 20) -> str:
@@ -82,7 +96,7 @@ def _relative_names(files: list[Path]) -> list[str]:
     return [p.resolve().relative_to(root).as_posix() for p in files]
 
 
-def cache_key(files: list[Path], fmt: LineFormat, miner: Miner) -> tuple[str, dict]:
+def cache_key(files: list[Path], fmt: LineFormat, miner: Miner, engine: str = "local") -> tuple[str, dict]:
     """Hash of everything an event table depends on: input bytes, format, miner settings, code version."""
     inputs = [{"file": rel, "size": p.stat().st_size, "sha256": file_sha256(p)}
               for p, rel in zip(files, _relative_names(files))]
@@ -93,212 +107,20 @@ def cache_key(files: list[Path], fmt: LineFormat, miner: Miner) -> tuple[str, di
         "table_version": TABLE_VERSION,
         "code_version": __version__,
     }
+    if engine == "dask":  # two-pass mining: a table of its own (sequential tables keep their keys)
+        basis["engine"] = {"kind": "dask", "learn_share": LEARN_SHARE}
     digest = hashlib.sha256(json.dumps(basis, sort_keys=True).encode()).hexdigest()
     return digest, basis
 
 
-def _decoded_lines(path: Path, encoding: str, counters: _Counters, strict: bool) -> Iterator[list[str]]:
-    """Yield chunks of decoded lines (without newlines); undecodable bytes are replaced and counted."""
-    with open(path, "rb") as fh:
-        lineno = counters.lines
-        file_start = lineno
-        first = True
-        while True:
-            raw = fh.readlines(1 << 24)
-            if not raw:
-                break
-            if first and encoding.replace("-", "").replace("_", "").lower() in ("utf8", "utf8sig"):
-                # A UTF-8 byte-order mark is not part of the first line.
-                if raw[0].startswith(b"\xef\xbb\xbf"):
-                    raw[0] = raw[0][3:]
-            first = False
-            blob = b"".join(raw)
-            try:
-                text = blob.decode(encoding)
-                lines = text.split("\n")
-                if lines and lines[-1] == "":
-                    lines.pop()
-            except UnicodeDecodeError:
-                lines = []
-                for i, b in enumerate(raw):
-                    try:
-                        s = b.decode(encoding)
-                    except UnicodeDecodeError as exc:
-                        if strict:
-                            raise DataError(
-                                f"{path}: line {lineno - file_start + i + 1}: byte {exc.start} is not valid {encoding} "
-                                f"(expected {encoding} text; ingest without --strict to replace such bytes)"
-                            ) from None
-                        s = b.decode(encoding, errors="replace")
-                        counters.bad_encoding_lines += 1
-                        if len(counters.first_bad_encoding) < 5:
-                            counters.first_bad_encoding.append(f"{path.name}:{lineno - file_start + i + 1}")
-                    lines.append(s[:-1] if s.endswith("\n") else s)
-            lines = [s[:-1] if s.endswith("\r") else s for s in lines]
-            lineno += len(lines)
-            yield lines
-
-
-def _parse_timestamps(values: list[str], fmt: LineFormat) -> np.ndarray:
-    """Timestamps (datetime64[us], UTC) of joined header values per the format's rule; NaT where one does not parse."""
-    ts = fmt.timestamp
-    assert ts is not None
-    arr = np.asarray(values, dtype=object)
-    if ts.unit is not None:
-        num = pd.to_numeric(arr, errors="coerce")
-        out = pd.to_datetime(num, unit=ts.unit, errors="coerce", utc=True)
-    else:
-        pattern = ts.format
-        if ts.default_year is not None:
-            arr = np.asarray([f"{ts.default_year} {v}" for v in values], dtype=object)
-            pattern = "%Y " + pattern
-        # Repeated whitespace (e.g. "Jul  1") parses the same as one space.
-        if any("  " in v for v in arr):
-            arr = np.asarray([" ".join(v.split()) for v in arr], dtype=object)
-        out = _strptime(arr, pattern)
-        out = _localize(out, ts.tz) if out.tz is None else out
-    return np.asarray(out.tz_convert("UTC").tz_localize(None), dtype="datetime64[us]")
-
-
-def _localize(local: pd.DatetimeIndex, tz: str) -> pd.DatetimeIndex:
-    """Local wall-clock times in ``tz`` as aware times; across clock changes, repeated hours are
-    inferred from the order of the lines (else taken as the first occurrence) and skipped hours
-    shifted forward."""
-    if tz == "UTC":
-        return local.tz_localize("UTC")
-    try:
-        return local.tz_localize(tz, ambiguous="infer", nonexistent="shift_forward")
-    except ValueError:
-        return local.tz_localize(tz, ambiguous=np.ones(len(local), dtype=bool), nonexistent="shift_forward")
-
-
-_FRACTION = re.compile(r"(.*%S)([.,:])%f")
-
-
-def _strptime(values: np.ndarray, pattern: str) -> pd.DatetimeIndex:
-    """Parse strings with a strftime pattern; NaT where one does not parse.
-
-    A trailing fraction of a second (``%S.%f`` and the like) is split off so that the
-    rest, repeated within each second, goes through pandas' parse cache, and the
-    fraction is added as microseconds; same result as parsing the whole pattern.
-    """
-    m = _FRACTION.fullmatch(pattern)
-    zoned = "%z" in pattern or "%Z" in pattern  # offsets may change (clock changes): convert to UTC
-    if not m:
-        return pd.DatetimeIndex(pd.to_datetime(values, format=pattern, errors="coerce", utc=zoned))
-    head_fmt, sep = m.group(1), m.group(2)
-    parts = [v.rpartition(sep) for v in values]
-    heads = np.asarray([p[0] if p[1] else "" for p in parts], dtype=object)
-    fracs = [p[2] for p in parts]
-    good = np.fromiter((0 < len(f) <= 9 and f.isdigit() for f in fracs), dtype=bool, count=len(fracs))
-    micros = np.asarray([int(f[:6].ljust(6, "0")) if ok else 0 for f, ok in zip(fracs, good)], dtype="int64")
-    base = pd.DatetimeIndex(pd.to_datetime(heads, format=head_fmt, errors="coerce", cache=True, utc=zoned))
-    out = base + pd.to_timedelta(micros, unit="us")
-    return out.where(good, pd.NaT)
-
-
-@dataclass
-class _Chunk:
-    """Parsed rows of one chunk of lines, column by column (plain lists and arrays, no pandas strings)."""
-
-    line: np.ndarray
-    ts: np.ndarray
-    content: list
-    entity: list | str
-    group: list | str | None
-    tag: list | str
-
-    def __len__(self) -> int:
-        return len(self.line)
-
-
-class _LineParser:
-    """Applies one line format to chunks of lines."""
-
-    def __init__(self, fmt: LineFormat, path_group: str | None = None):
-        self.fmt = fmt
-        self.rx = fmt.compiled()
-        self.fields = ["content"]
-        if fmt.timestamp:
-            self.fields += [f for f in fmt.timestamp.fields if f not in self.fields]
-        for name in (fmt.entity, fmt.group.field if fmt.group else None, fmt.tag.field if fmt.tag else None):
-            if name and name not in self.fields:
-                self.fields.append(name)
-        self.group_rx = re.compile(fmt.group.pattern) if fmt.group and fmt.group.pattern else None
-        self.path_group = path_group
-        self.group_indices = tuple(self.rx.groupindex[f] for f in self.fields)
-        self.position = {f: i for i, f in enumerate(self.fields)}
-
-    def _column(self, cols: list, name: str) -> list:
-        """One header field's values ("" where its optional group did not take part)."""
-        values = cols[self.position[name]]
-        return [v or "" for v in values] if None in values else list(values)
-
-    def parse(self, lines: list[str], first_line: int) -> tuple[_Chunk | None, list[tuple[int, str, str]]]:
-        """Split lines into header fields; return the parsed rows and (line, reason, text) rejects."""
-        match = self.rx.match
-        matches = [match(s) for s in lines]
-        ok = np.fromiter((m is not None for m in matches), dtype=bool, count=len(matches))
-        bad = [(first_line + int(i), "line does not match the format's regex", lines[i]) for i in np.flatnonzero(~ok)]
-        good = [m for m in matches if m is not None] if len(bad) else matches
-        if not good:
-            return None, bad
-        # One C-level m.group(*indices) per line returns every wanted field at once.
-        idx = self.group_indices
-        rows = [m.group(*idx) for m in good] if len(idx) > 1 else [(m.group(idx[0]),) for m in good]
-        cols = list(zip(*rows))
-        line = np.flatnonzero(ok).astype(np.int64) + first_line
-        content = [c.strip() for c in self._column(cols, "content")]
-        keep = None
-        if self.fmt.timestamp:
-            fields = [self._column(cols, f) for f in self.fmt.timestamp.fields]
-            joined = fields[0] if len(fields) == 1 else [" ".join(v) for v in zip(*fields)]
-            ts = _parse_timestamps(joined, self.fmt)
-            nat = np.isnat(ts)
-            if nat.any():
-                expect = self.fmt.timestamp.format or f"epoch {self.fmt.timestamp.unit}"
-                bad += [(int(line[i]), f"timestamp {joined[i]!r} does not match {expect!r}",
-                         lines[int(line[i]) - first_line]) for i in np.flatnonzero(nat)]
-                keep = np.flatnonzero(~nat)
-        else:
-            # No timestamp in the format: the line number stands in as seconds since the epoch,
-            # so time-ordered stages still see the file order.
-            ts = line.astype("datetime64[s]").astype("datetime64[us]")
-        entity: list | str = self._column(cols, self.fmt.entity) if self.fmt.entity else ""
-        group: list | str | None
-        if self.group_rx is not None:
-            # First match in the content is the session key (a line naming several keys counts for the first).
-            which = 1 if self.group_rx.groups else 0
-            search = self.group_rx.search
-            group = [m.group(which) if (m := search(c)) else None for c in content]
-        elif self.fmt.group and self.fmt.group.field:
-            group = [v or None for v in self._column(cols, self.fmt.group.field)]
-        else:
-            group = self.path_group
-        tag: list | str = ""
-        if self.fmt.tag:
-            normal = self.fmt.tag.normal
-            tag = [("" if v == normal else v) for v in self._column(cols, self.fmt.tag.field)]
-        chunk = _Chunk(line, ts, content, entity, group, tag)
-        if keep is not None:
-            chunk = _take(chunk, keep)
-        bad.sort()
-        return (chunk if len(chunk) else None), bad
-
-
-def _take(chunk: _Chunk, keep: np.ndarray) -> _Chunk:
-    """The rows of a chunk at the given positions."""
-    pick = (lambda v: [v[i] for i in keep] if isinstance(v, list) else v)  # noqa: E731
-    return _Chunk(chunk.line[keep], chunk.ts[keep], pick(chunk.content), pick(chunk.entity), pick(chunk.group),
-                  pick(chunk.tag))
-
-
-def _path_group(path: str, fmt: LineFormat) -> str | None:
-    """Session key taken from the file's path (relative to the dataset folder), when the format says so."""
-    if not (fmt.group and fmt.group.path):
-        return None
-    m = re.search(fmt.group.path, path)
-    return (m.group(1) if m.groups() else m.group(0)) if m else None
+def check_name(name: str) -> str:
+    """A dataset name that stays one folder inside the data home; ConfigError otherwise."""
+    if not isinstance(name, str) or not _NAME.fullmatch(name):
+        raise ConfigError(
+            f"dataset name {name!r}: expected letters, digits, '.', '_' or '-' (starting with a letter or digit, "
+            "at most 128 characters); a name must not hold a path"
+        )
+    return name
 
 
 def ingest_files(
@@ -312,8 +134,23 @@ def ingest_files(
     strict: bool = False,
     progress: bool = False,
     miner: TemplateMiner | None = None,
+    workers: int | None = None,
+    max_rejected_share: float = MAX_REJECTED_SHARE,
+    max_quarantine_bytes: int = MAX_QUARANTINE_BYTES,
+    range_bytes: int | None = None,
+    engine: str = "local",
+    scheduler: str | None = None,
 ) -> IngestResult:
-    """Build (or reuse) the event table, template dictionary and manifest for the given log files."""
+    """Build (or reuse) the event table, template dictionary and manifest for the given log files.
+
+    ``engine="dask"`` mines in two passes on a Dask cluster (see logtrial.data.distributed):
+    template ids may differ slightly from sequential Drain, so such tables are cached apart.
+    """
+    check_name(name)
+    if not 0.0 <= max_rejected_share <= 1.0:
+        raise ConfigError(f"max_rejected_share: expected a share between 0 and 1, got {max_rejected_share!r}")
+    if max_quarantine_bytes < 0:
+        raise ConfigError(f"max_quarantine_bytes: expected a size of at least 0, got {max_quarantine_bytes!r}")
     files = [Path(f) for f in files]
     for f in files:
         if not f.is_file():
@@ -322,35 +159,54 @@ def ingest_files(
     if len(empty) == len(files):
         raise DataError(f"{empty[0]}: file is empty (expected log lines)")
     files = [f for f in files if f not in empty]
-    key, basis = cache_key(files, fmt, miner_settings)
+    if engine not in ("local", "dask"):
+        raise ConfigError(f"engine: expected 'local' or 'dask', got {engine!r}")
+    if engine == "dask" and miner is not None and not isinstance(miner, DrainMiner):
+        raise ConfigError("engine dask: needs the built-in drain miner (templates are matched on the cluster)")
+    key, basis = cache_key(files, fmt, miner_settings, engine)
     basis["empty_files"] = [f.name for f in empty]
-    folder = Path(out_root) / name / key[:16]
+    out_root = Path(out_root)
+    folder = out_root / name / key[:16]
+    if not folder.resolve().is_relative_to(out_root.resolve()):
+        raise ConfigError(f"dataset name {name!r}: the table folder {folder} would lie outside {out_root}")
+    clean_stale_temporaries(out_root)
     manifest_path = folder / "manifest.json"
     if not force and manifest_path.is_file():
         manifest = json.loads(manifest_path.read_text())
         if manifest.get("key") == key:
-            if strict and manifest.get("bad_encoding_lines"):
-                first = ", ".join(str(x) for x in manifest.get("first_bad_encoding_lines") or [])
-                raise DataError(f"{files[0].parent}: {manifest['bad_encoding_lines']} line(s) are not valid "
-                                f"{fmt.encoding} (first: {first}); expected {fmt.encoding} text "
-                                "(ingest without --strict to replace such bytes)")
-            return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", manifest, cached=True)
+            broken = cache_damage(folder, manifest)
+            if broken is None:
+                if strict and manifest.get("bad_encoding_lines"):
+                    first = ", ".join(str(x) for x in manifest.get("first_bad_encoding_lines") or [])
+                    raise DataError(f"{files[0].parent}: {manifest['bad_encoding_lines']} line(s) are not valid "
+                                    f"{fmt.encoding} (first: {first}); expected {fmt.encoding} text "
+                                    "(ingest without --strict to replace such bytes)")
+                return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", manifest, cached=True)
+            print(f"{folder}: cached event table is damaged ({broken}); rebuilding it", file=sys.stderr)
 
     miner = miner or registry_miner(miner_settings.model_dump())
     folder.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{key[:16]}.tmp-", dir=folder.parent))
+    tmp = Path(tempfile.mkdtemp(prefix=f".{key[:16]}{_TMP_MARK}", dir=folder.parent))
     try:
+        (tmp / _OWNER).write_text(json.dumps({"pid": os.getpid(), "host": socket.gethostname()}))
         counters = _Counters()
-        _write_table(files, fmt, miner, tmp, counters, strict, progress)
+        caps = _Caps(max_rejected_share, max_quarantine_bytes)
+        _write_table(files, fmt, miner, tmp, counters, strict, progress, caps,
+                     default_workers() if workers is None else max(1, int(workers)),
+                     range_bytes or default_range_bytes(fmt), engine, scheduler)
         if counters.rows == 0:
             first = next(iter(counters.reasons), "no lines")
             raise DataError(
                 f"{files[0]}: no line matched the format ({counters.quarantined} quarantined; first reason: {first}); "
                 "expected at least one line with the format's fields"
             )
+        caps.check_share(files[0], counters, final=True)
+        n_templates = len(miner.templates())
+        counts = (np.bincount(np.concatenate(counters.events), minlength=n_templates) if engine == "dask"
+                  else np.asarray(miner.counts(), dtype=np.int64))
         templates = pd.DataFrame(
-            {"event": np.arange(len(miner.templates()), dtype=np.int32), "template": miner.templates(),
-             "count": np.asarray(miner.counts(), dtype=np.int64)}
+            {"event": np.arange(n_templates, dtype=np.int32), "template": miner.templates(),
+             "count": np.asarray(counts, dtype=np.int64)}
         )
         templates.to_csv(tmp / "templates.csv", index=False)
         manifest = {
@@ -367,11 +223,13 @@ def ingest_files(
             "mined_lines": counters.rows,
         }
         (tmp / "manifest.json").write_text(json.dumps(manifest, indent=2, sort_keys=True))
+        (tmp / _OWNER).unlink()
         if folder.exists() and not force and (folder / "manifest.json").is_file():
-            # Another process finished the same table meanwhile: keep theirs (identical inputs and settings).
-            shutil.rmtree(tmp, ignore_errors=True)
-            manifest = json.loads((folder / "manifest.json").read_text())
-            return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", manifest, cached=True)
+            theirs = json.loads((folder / "manifest.json").read_text())
+            if theirs.get("key") == key and cache_damage(folder, theirs) is None:
+                # Another process finished the same table meanwhile: keep theirs (identical inputs and settings).
+                shutil.rmtree(tmp, ignore_errors=True)
+                return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", theirs, cached=True)
         if folder.exists():
             shutil.rmtree(folder)
         os.replace(tmp, folder)
@@ -381,48 +239,195 @@ def ingest_files(
     return IngestResult(folder, folder / "events.parquet", folder / "templates.csv", manifest, cached=False)
 
 
+def default_range_bytes(fmt: LineFormat) -> int:
+    """Bytes per parsed range: small enough to keep workers busy, unless local times are inferred per chunk.
+
+    Local wall-clock times in a zone with clock changes are told apart by their order within
+    one chunk, so such formats keep the chunks ingest always used (RANGE_BYTES); for every
+    other format the cut changes nothing in the output.
+    """
+    ts = fmt.timestamp
+    if ts is None or ts.unit is not None or ts.tz == "UTC" or "%z" in (ts.format or "") or "%Z" in (ts.format or ""):
+        return SMALL_RANGE_BYTES
+    return RANGE_BYTES
+
+
+def cache_damage(folder: Path, manifest: dict) -> str | None:
+    """Why a cached table cannot be reused (unreadable Parquet footer, row count unlike the manifest's, a
+    missing file), or None when it is intact."""
+    for name in ("events.parquet", "templates.csv", "quarantine.tsv"):
+        if not (folder / name).is_file():
+            return f"{name} is missing"
+    try:
+        rows = pq.read_metadata(folder / "events.parquet").num_rows
+    except (OSError, pa.ArrowException) as exc:
+        return f"events.parquet is unreadable: {str(exc).splitlines()[0][:200]}"
+    if rows != manifest.get("rows"):
+        return f"events.parquet holds {rows} rows, the manifest says {manifest.get('rows')}"
+    return None
+
+
+def clean_stale_temporaries(out_root: Path) -> list[Path]:
+    """Remove temporary table folders left by ingests that were killed (their process is gone); return them."""
+    removed: list[Path] = []
+    if not Path(out_root).is_dir():
+        return removed
+    host = socket.gethostname()
+    for tmp in Path(out_root).glob(f"*/.*{_TMP_MARK}*"):
+        if not tmp.is_dir():
+            continue
+        try:
+            owner = json.loads((tmp / _OWNER).read_text())
+            alive = owner.get("host") != host or _pid_alive(int(owner["pid"]))
+        except (OSError, ValueError, KeyError, TypeError):
+            # No readable owner: only a folder older than a minute (the owner is written right after creation).
+            alive = time.time() - tmp.stat().st_mtime < 60
+        if alive:
+            continue
+        size = sum(p.stat().st_size for p in tmp.rglob("*") if p.is_file())
+        shutil.rmtree(tmp, ignore_errors=True)
+        print(f"removed {tmp} ({size / 2**20:.1f} MiB), left by an ingest that was stopped", file=sys.stderr)
+        removed.append(tmp)
+    return removed
+
+
+def _pid_alive(pid: int) -> bool:
+    """Tell whether a process with this id runs on this machine."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+@dataclass
+class _Caps:
+    """Limits on rejected lines: a share of all lines, and the size of the quarantine file."""
+
+    share: float
+    quarantine_bytes: int
+
+    def check_share(self, path: Path, counters: _Counters, final: bool = False) -> None:
+        """Stop when too many lines were rejected (checked after SHARE_FROM_LINES lines, and at the end)."""
+        if counters.lines == 0 or (not final and counters.lines < SHARE_FROM_LINES):
+            return
+        share = counters.quarantined / counters.lines
+        if share > self.share:
+            first = next(iter(counters.reasons), "")
+            raise DataError(
+                f"{path}: ingest stopped: {counters.quarantined:,} of {counters.lines:,} lines ({share:.1%}) were "
+                f"rejected ({first}), more than the cap of {self.share:.0%}; expected lines in the format's shape "
+                "(check the format, or raise --max-rejected-share)"
+            )
+
+    def check_size(self, path: Path, counters: _Counters, written: int) -> None:
+        """Stop when the quarantine file grows past its cap."""
+        if written > self.quarantine_bytes:
+            raise DataError(
+                f"{path}: ingest stopped: the quarantine file passed {self.quarantine_bytes / 2**20:,.0f} MiB after "
+                f"{counters.lines:,} lines ({counters.quarantined:,} rejected); expected mostly well-formed lines "
+                "(check the input, or raise --max-quarantine-mb)"
+            )
+
+
 def _write_table(
     files: list[Path], fmt: LineFormat, miner: TemplateMiner, out: Path, counters: _Counters, strict: bool,
-    progress: bool,
+    progress: bool, caps: _Caps, workers: int, range_bytes: int, engine: str = "local", scheduler: str | None = None,
 ) -> None:
-    """Stream all files chunk by chunk into events.parquet and quarantine.tsv inside ``out``."""
+    """Stream all files range by range into events.parquet and quarantine.tsv inside ``out``.
+
+    Workers parse (and, for our Drain miner, mask) line-aligned byte ranges; this process
+    takes their results in file order, numbers the lines, mines templates and writes.
+    """
     from tqdm import tqdm
 
     total = sum(f.stat().st_size for f in files)
     bar = tqdm(total=total, unit="B", unit_scale=True, desc="ingest", disable=not progress, file=sys.stderr)
+    masks = tuple(miner.mask_patterns()) if isinstance(miner, DrainMiner) else None
+    names = _relative_names(files)
+    plan = [(path, rel, byte_ranges(path, range_bytes)) for path, rel in zip(files, names)]
+    if sum(len(r) for _, _, r in plan) < 2:
+        workers = 1  # one range: nothing to run side by side
+    jobs = [RangeJob(rng, fmt, path_group(rel, fmt), strict, masks) for path, rel, ranges in plan for rng in ranges]
+    owners = [(path, rel, i == 0) for path, rel, ranges in plan for i in range(len(ranges))]
+    if engine == "dask":
+        if masks is None:
+            raise ConfigError("engine dask: needs the built-in drain miner (templates are matched on the cluster)")
+        learn = learn_count(len(jobs))
+
+        def staged() -> Iterator[RangeResult]:
+            yield from ordered_map(parse_range, jobs[:learn], 1)
+            # the learnt templates are frozen only now: every learn range has been mined by the loop below
+            yield from dask_map(jobs[learn:], miner.frozen_copy(), scheduler, workers)
+
+        results: Iterator[RangeResult] = staged()
+    else:
+        results = ordered_map(parse_range, jobs, workers)
     writer = pq.ParquetWriter(out / "events.parquet", EVENT_SCHEMA, compression="zstd")
+    written = 0
     with open(out / "quarantine.tsv", "w", encoding="utf-8") as qf:
         # `line` counts across all files (the event table's numbering); `file_line` within `file`.
         qf.write("line\tfile\tfile_line\treason\ttext\n")
         try:
-            for path, rel in zip(files, _relative_names(files)):
-                parser = _LineParser(fmt, _path_group(rel, fmt))
-                file_start = counters.lines
-                for lines in _decoded_lines(path, fmt.encoding, counters, strict):
-                    first = counters.lines + 1
-                    counters.lines += len(lines)
-                    chunk, bad = parser.parse(lines, first)
-                    for ln, reason, text in bad:
-                        kind = "timestamp does not parse" if reason.startswith("timestamp") else reason
-                        counters.reasons[kind] = counters.reasons.get(kind, 0) + 1
-                        clean = text[:QUARANTINE_TEXT_CHARS].replace("\t", " ")
-                        qf.write(f"{ln}\t{rel}\t{ln - file_start}\t{reason}\t{clean}\n")
-                    counters.quarantined += len(bad)
-                    if chunk is not None:
-                        events = np.asarray(miner.add_many(chunk.content), dtype=np.int32)
-                        writer.write_table(_arrow_chunk(chunk, events))
-                        counters.rows += len(chunk)
-                    bar.update(sum(len(s) + 1 for s in lines))
+            file_start = 0
+            for (path, rel, first_of_file), res in zip(owners, results):
+                if first_of_file:
+                    file_start = counters.lines
+                offset = counters.lines  # lines before this range
+                if res.strict_error is not None:
+                    at, byte = res.strict_error
+                    raise DataError(
+                        f"{path}: line {offset - file_start + at}: byte {byte} is not valid {fmt.encoding} "
+                        f"(expected {fmt.encoding} text; ingest without --strict to replace such bytes)"
+                    )
+                for at in res.bad_lines:
+                    counters.bad_encoding_lines += 1
+                    if len(counters.first_bad_encoding) < 5:
+                        counters.first_bad_encoding.append(f"{path.name}:{offset - file_start + at}")
+                counters.lines += res.n_lines
+                for rel_ln, reason, text in res.rejects:
+                    ln = offset + rel_ln
+                    kind = "timestamp does not parse" if reason.startswith("timestamp") else reason
+                    counters.reasons[kind] = counters.reasons.get(kind, 0) + 1
+                    clean = text[:QUARANTINE_TEXT_CHARS].replace("\t", " ")
+                    row = f"{ln}\t{rel}\t{ln - file_start}\t{reason}\t{clean}\n"
+                    qf.write(row)
+                    written += len(row)
+                counters.quarantined += len(res.rejects)
+                caps.check_size(path, counters, written)
+                caps.check_share(path, counters)
+                chunk = res.chunk
+                if chunk is not None:
+                    chunk.line += offset
+                    contents = chunk.content.to_pylist() if isinstance(chunk.content, pa.Array) else chunk.content
+                    if res.matched is not None:
+                        events = res.matched.astype(np.int32, copy=True)
+                        residue = np.flatnonzero(events < 0)
+                        if len(residue):
+                            events[residue] = miner.add_many_masked([contents[i] for i in residue])
+                    elif res.masked:
+                        events = np.asarray(miner.add_many_masked(contents), dtype=np.int32)
+                    else:
+                        events = np.asarray(miner.add_many(contents), dtype=np.int32)
+                    writer.write_table(_arrow_chunk(chunk, events))
+                    if engine == "dask":
+                        counters.events.append(events)
+                    counters.rows += len(chunk)
+                bar.update(res.n_bytes)
         finally:
             writer.close()
             bar.close()
 
 
-def _arrow_chunk(chunk: _Chunk, events: np.ndarray) -> pa.Table:
+def _arrow_chunk(chunk: ParsedChunk, events: np.ndarray) -> pa.Table:
     """One chunk of the event table as Arrow, in the table's schema."""
     n = len(chunk)
 
-    def text(v: list | str | None) -> pa.Array:
+    def text(v: list | pa.Array | str | None) -> pa.Array:
+        if isinstance(v, pa.Array):
+            return v
         return pa.array(v, type=pa.string()) if isinstance(v, list) else pa.nulls(n, pa.string()).fill_null(v) \
             if v is not None else pa.nulls(n, pa.string())
 

@@ -302,37 +302,134 @@ def time_windows(
     ev = events["event"].to_numpy()
     _check_vocab(ev, vocab_size)
     codes, names, ts, order = _entity_sorted(events)
-    s, d = size.value, step.value
-    t = ts[order]
-    k_hi = np.floor_divide(t, d)
-    if d == s:
-        k = k_hi
-        pair_ev = order
-        pair_codes = codes[order]
-    else:
-        k_lo = np.floor_divide(t - s, d) + 1
-        reps = (k_hi - k_lo + 1).astype(np.int64)
-        total = int(reps.sum())
-        cum = np.zeros(len(reps) + 1, dtype=np.int64)
-        np.cumsum(reps, out=cum[1:])
-        within = np.arange(total, dtype=np.int64) - np.repeat(cum[:-1], reps)
-        pos = np.repeat(np.arange(len(order), dtype=np.int64), reps)
-        k = k_lo[pos] + within
-        # Pairs are generated in (entity, time) order; a stable sort on the combined
-        # (entity, k) key yields (entity, k, time) order.
-        k_min = int(k.min()) if total else 0
-        span = int(k.max()) - k_min + 1 if total else 1
-        pair_codes = codes[order][pos].astype(np.int64)
-        if (int(pair_codes.max()) + 1) * span < 2**62:
-            o2 = np.argsort(pair_codes * span + (k - k_min), kind="stable")
-        else:
-            o2 = np.lexsort((pos, k, pair_codes))
-        k = k[o2]
-        pair_ev = order[pos[o2]]
-        pair_codes = codes[pair_ev]
-    starts = k * d
     info = {"kind": "time", "size": size, "step": step}
-    return _assemble(pair_codes, k, pair_ev, ev, starts, starts + s, ts, vocab_size, info, entity=(names, pair_codes))
+    s, d = size.value, step.value
+    c = codes[order]
+    t = ts[order]
+    del ts, codes
+    w_code, k = _nonempty_windows(c, t, s, d)
+    starts = k * d
+    del k
+    lo, hi = _slice_bounds(c, t, w_code, starts, starts + s)
+    del t
+    return _assemble_slices(w_code, starts, starts + s, lo, hi, order, ev, names, vocab_size, info)
+
+
+def _nonempty_windows(c: np.ndarray, t: np.ndarray, s: int, d: int) -> tuple[np.ndarray, np.ndarray]:
+    """(entity code, window number k) of every window [k*d, k*d + s) holding an event, in (entity, k) order.
+
+    Events are sorted by (entity, time). Event i lies in windows k_lo..k_hi; the windows an
+    event adds to those of the entity's previous event start after that event's k_hi.
+    """
+    if len(t) == 0:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    k_hi = np.floor_divide(t, d)
+    from_k = t - s
+    np.floor_divide(from_k, d, out=from_k)
+    from_k += 1  # k_lo: the first window holding the event
+    # after the entity's previous event, only windows past that event's k_hi are new
+    later = k_hi[:-1] + 1
+    np.maximum(later, from_k[1:], out=later)
+    same = c[1:] == c[:-1]
+    np.copyto(from_k[1:], later, where=same)
+    del later, same
+    new = k_hi - from_k
+    del k_hi
+    new += 1
+    np.maximum(new, 0, out=new)
+    total = int(new.sum())
+    has = np.flatnonzero(new)
+    new, from_k = new[has], from_k[has]
+    cum = np.zeros(len(new) + 1, dtype=np.int64)
+    np.cumsum(new, out=cum[1:])
+    # window j belongs to the event `has[r]` with cum[r] <= j < cum[r+1]; its k counts on from that event's from_k
+    k = np.repeat(from_k - cum[:-1], new) + np.arange(total, dtype=np.int64)
+    w_code = np.repeat(c[has], new)
+    return w_code, k
+
+
+def _slice_bounds(
+    c: np.ndarray, t: np.ndarray, w_code: np.ndarray, w_start: np.ndarray, w_end: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Positions [lo, hi) in the (entity, time)-sorted events of each window's events (time in [start, end))."""
+    # Times become dense ranks so that (entity, rank) packs into one sortable int64 key.
+    stamps = np.unique(np.concatenate([t, w_start, w_end]))
+    span = len(stamps)
+    ev_key = c.astype(np.int64) * span + np.searchsorted(stamps, t)
+    lo = np.searchsorted(ev_key, w_code * span + np.searchsorted(stamps, w_start), side="left")
+    hi = np.searchsorted(ev_key, w_code * span + np.searchsorted(stamps, w_end), side="left")
+    return lo, hi
+
+
+# Windows are turned into counts and sequences this many event slots at a time (bounds temporaries).
+_SLICE_BLOCK = 1 << 22
+
+
+def _assemble_slices(
+    w_code: np.ndarray,
+    start_ns: np.ndarray,
+    end_ns: np.ndarray,
+    lo: np.ndarray,
+    hi: np.ndarray,
+    order: np.ndarray,
+    ev: np.ndarray,
+    names: np.ndarray,
+    vocab_size: int,
+    info: dict,
+) -> WindowSet:
+    """A WindowSet from windows given as slices [lo, hi) of the (entity, time)-sorted events.
+
+    Sequences and counts are built block by block with int32 positions; no array holds
+    an int64 per (event, window) pair.
+    """
+    n_win = len(lo)
+    lengths = (hi - lo).astype(np.int64)
+    offsets = np.zeros(n_win + 1, dtype=np.int64)
+    np.cumsum(lengths, out=offsets[1:])
+    total = int(offsets[-1])
+    ev_sorted = ev[order].astype(np.int32, copy=False)
+    pos_type = np.int32 if len(ev_sorted) < 2**31 else np.int64
+    values = np.empty(total, dtype=np.int32)
+    # count matrix arrays, filled block by block (a window's distinct events never outnumber its events)
+    indptr = np.zeros(n_win + 1, dtype=np.int64)
+    indices = np.empty(total, dtype=np.int32)
+    data = np.empty(total, dtype=np.int32)
+    nnz = 0
+    w = 0
+    while w < n_win:
+        # windows [w, w_end) hold at most _SLICE_BLOCK events (at least one window per block)
+        w_end = max(w + 1, int(np.searchsorted(offsets, offsets[w] + _SLICE_BLOCK, side="right")) - 1)
+        w_end = min(w_end, n_win)
+        a, b = int(offsets[w]), int(offsets[w_end])
+        n_lens = lengths[w:w_end].astype(pos_type)
+        local = (offsets[w:w_end] - a).astype(pos_type)
+        gather = np.repeat(lo[w:w_end].astype(pos_type) - local, n_lens) + np.arange(b - a, dtype=pos_type)
+        block_values = ev_sorted[gather]
+        del gather
+        values[a:b] = block_values
+        block = sp.csr_matrix(
+            (np.ones(b - a, dtype=np.int32), block_values, np.r_[local, b - a].astype(np.int64)),
+            shape=(w_end - w, vocab_size),
+        )
+        block.sum_duplicates()
+        indices[nnz : nnz + block.nnz] = block.indices
+        data[nnz : nnz + block.nnz] = block.data
+        indptr[w + 1 : w_end + 1] = block.indptr[1:] + nnz
+        nnz += block.nnz
+        del block, block_values
+        w = w_end
+    counts = sp.csr_matrix((data[:nnz], indices[:nnz], indptr), shape=(n_win, vocab_size), copy=False)
+    counts.has_sorted_indices = True
+    meta = pd.DataFrame(
+        {
+            "id": np.arange(n_win, dtype=np.int64),
+            "entity": pd.array(names[w_code], dtype="str") if n_win else pd.array([], dtype="str"),
+            "start": from_ns(start_ns),
+            "end": from_ns(end_ns),
+            "n_events": lengths,
+        }
+    )
+    return WindowSet(meta, counts, values, offsets, vocab_size, info=info)
 
 
 def count_windows(events: pd.DataFrame, vocab_size: int, n: int, step: int | None = None) -> WindowSet:
@@ -353,28 +450,21 @@ def count_windows(events: pd.DataFrame, vocab_size: int, n: int, step: int | Non
     if m == 0:
         info = {"kind": "count", "n": n, "step": step}
         return _assemble(c, c, order, ev, None, None, ts, vocab_size, info, entity=(names, c))
+    # each window is a slice of the entity's run in the (entity, time) order
     first = np.flatnonzero(np.r_[True, c[1:] != c[:-1]])
-    size_per_ent = np.diff(np.r_[first, m])
-    grp_start = np.repeat(first, size_per_ent)
-    p = np.arange(m, dtype=np.int64) - grp_start
-    cnt = np.repeat(size_per_ent, size_per_ent).astype(np.int64)
+    cnt = np.diff(np.r_[first, m])
     j_last = np.where(cnt > n, np.minimum((cnt - 1) // step, 1 + (cnt - n - 1) // step), 0)
-    k_lo = np.maximum(0, -((n - 1 - p) // step))  # ceil((p - n + 1) / step), at least 0
-    k_hi = np.minimum(p // step, j_last)
-    reps = np.maximum(k_hi - k_lo + 1, 0)
-    total = int(reps.sum())
-    cum = np.zeros(m + 1, dtype=np.int64)
-    np.cumsum(reps, out=cum[1:])
-    within = np.arange(total, dtype=np.int64) - np.repeat(cum[:-1], reps)
-    pos = np.repeat(np.arange(m, dtype=np.int64), reps)
-    k = k_lo[pos] + within
-    k_span = int(k.max()) + 1 if total else 1
-    o2 = np.argsort(c[pos].astype(np.int64) * k_span + k, kind="stable")  # (entity, k, time) order; k_span <= m
-    k, pos = k[o2], pos[o2]
-    pair_ev = order[pos]
+    n_win = j_last + 1
+    cum = np.zeros(len(n_win) + 1, dtype=np.int64)
+    np.cumsum(n_win, out=cum[1:])
+    run = np.repeat(np.arange(len(first)), n_win)
+    j = np.arange(int(cum[-1]), dtype=np.int64) - cum[:-1][run]
+    lo = first[run] + j * step
+    hi = np.minimum(lo + n, first[run] + cnt[run])
+    del run, j
+    t = ts[order]
     info = {"kind": "count", "n": n, "step": step}
-    pair_codes = c[pos]
-    return _assemble(pair_codes, k, pair_ev, ev, None, None, ts, vocab_size, info, entity=(names, pair_codes))
+    return _assemble_slices(c[lo], t[lo], t[hi - 1] + _ONE_US, lo, hi, order, ev, names, vocab_size, info)
 
 
 # ---------------------------------------------------------------------------
