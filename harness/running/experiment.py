@@ -160,7 +160,7 @@ def _canonical_scoring(raw: Any, where: str) -> dict:
 
 
 # Registry fields that change what a dataset's events or truth are (not its description).
-_ENTRY_FIELDS = {"sources", "logs", "format", "labels", "miner", "generator"}
+_ENTRY_FIELDS = {"sources", "logs", "format", "labels", "miner", "generator", "sessions"}
 
 
 def entry_fingerprint(entry) -> str:

@@ -19,15 +19,18 @@ import numpy as np
 import pandas as pd
 from logtrial.data.acquire import log_files
 from logtrial.data.ingest import dataset_folder, ingest_files, read_events
-from logtrial.data.registry import get_entry, load_registry
+from logtrial.data.registry import SessionEntry, get_entry, load_registry
 from logtrial.detectors.base import Detector
 from logtrial.detectors.registry import create
 from logtrial.errors import DataError
 from logtrial.evaluation.run_figures import evaluate_run, window_metrics_safe
 from logtrial.evaluation.thresholds import ThresholdChoice, choose_threshold, load_policy
 from logtrial.labels.noise import load_noise, replay
+from logtrial.labels.incidents import incidents_from_sessions
 from logtrial.labels.truth import truth_incidents
 from logtrial.running.experiment import Experiment, RunConfig, describe_failure
+from logtrial.running.threads import pinned_threads
+from logtrial.windowing.sessions import load_entry_sessions, session_events
 from logtrial.windowing.splits import check_no_leakage, chronological_split, random_split
 from logtrial.windowing.vocabulary import apply_vocabulary
 from logtrial.windowing.windows import build_windows, label_windows
@@ -95,6 +98,9 @@ class Runner:
         """Events and truth incidents of a dataset (ingested or reused from the cache)."""
         if name not in self._datasets:
             entry = get_entry(name, load_registry(self.exp.registry_files))
+            if isinstance(entry, SessionEntry):  # preprocessed sessions: no log lines to ingest
+                self._datasets[name] = session_dataset(entry)
+                return self._datasets[name]
             folder = dataset_folder(entry, self.home, self.mirror, progress=self.progress)
             files = log_files(entry, folder)
             res = ingest_files(entry.name, files, entry.format, entry.miner, self.home / "tables",
@@ -139,7 +145,13 @@ class Runner:
 
     # ----- one run, step by step -----------------------------------------------------------
     def execute(self, run: RunConfig) -> dict:
-        """Run one config end to end and return its record (not yet stored)."""
+        """Run one config end to end, its numeric libraries pinned to one thread, and return its record."""
+        with pinned_threads() as threads:
+            record = self._execute(run)
+        record["threads"] = threads
+        return record
+
+    def _execute(self, run: RunConfig) -> dict:
         t0 = time.time()
         data = self.dataset(run.dataset)
         prep = self.prepared(run)
@@ -251,6 +263,14 @@ class Runner:
             record = self.safe_execute(run)
             out.append((record, self._last_scores.pop(run.run_id, None)))
         return out
+
+
+def session_dataset(entry: SessionEntry) -> DatasetData:
+    """A session-file dataset as an event table (sessions in a seeded order), its truth and identity."""
+    sessions, vocab, key = load_entry_sessions(entry)
+    events = session_events(sessions, entry.sessions.order_seed)
+    truth = incidents_from_sessions(events, sessions.keys[sessions.labels == 1])
+    return DatasetData(entry.name, events, vocab, truth, key, [f"event {i + entry.sessions.first_id}" for i in range(vocab)])
 
 
 def training_windows(det: Detector, train: np.ndarray, rep_labels: np.ndarray) -> np.ndarray:
