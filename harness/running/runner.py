@@ -32,7 +32,7 @@ from logtrial.running.experiment import Experiment, RunConfig, describe_failure
 from logtrial.running.threads import pinned_threads
 from logtrial.windowing.sessions import load_entry_sessions, session_events
 from logtrial.windowing.splits import check_no_leakage, chronological_split, random_split
-from logtrial.windowing.vocabulary import apply_vocabulary
+from logtrial.windowing.vocabulary import fit_vocabulary, remap_windows
 from logtrial.windowing.windows import build_windows, label_windows
 
 RESULT_VERSION = 1
@@ -89,7 +89,6 @@ class Runner:
         self.progress = progress
         self._datasets: dict[str, DatasetData] = {}
         self._prepared: dict[str, Prepared] = {}
-        self._vocabularies: dict[str, tuple[pd.DataFrame, int]] = {}
         self._fits: dict[str, tuple[np.ndarray, np.ndarray, dict]] = {}
         self._last_scores: dict[str, pd.DataFrame] = {}
 
@@ -112,26 +111,14 @@ class Runner:
                                                res.manifest["key"], templates)
         return self._datasets[name]
 
-    def events_for(self, run: RunConfig) -> tuple[pd.DataFrame, int]:
-        """The dataset's events in the run's vocabulary (template ids, or semantic groups) and its size."""
-        data = self.dataset(run.dataset)
-        if run.vocabulary.get("kind", "templates") == "templates":
-            return data.events, data.vocab_size
-        key = json.dumps([run.dataset, run.vocabulary], sort_keys=True)
-        if key not in self._vocabularies:
-            # The vocabulary belongs to the dataset, not to a run: a fixed seed.
-            self._vocabularies[key] = apply_vocabulary(data.events, data.templates, run.vocabulary, seed=0)
-        return self._vocabularies[key]
-
     def prepared(self, run: RunConfig) -> Prepared:
-        """Windows, truth labels and the split for a run's dataset, windowing, task and split."""
+        """Windows (in the run's vocabulary), truth labels and the split for a run's dataset, windowing, task and split."""
         # A random split draws with the run's seed, so it is shared only between runs with that seed.
         seed = run.seed if run.split["kind"] == "random" else None
-        key = json.dumps([run.dataset, run.windows, run.task, run.split, seed], sort_keys=True)
+        key = json.dumps([run.dataset, run.windows, run.task, run.split, seed, run.vocabulary], sort_keys=True)
         if key not in self._prepared:
             data = self.dataset(run.dataset)
-            events, vocab_size = self.events_for(run)
-            ws = build_windows(events, vocab_size, run.windows)
+            ws = build_windows(data.events, data.vocab_size, run.windows)
             if len(ws) == 0:
                 raise DataError(f"dataset '{run.dataset}': no windows for {run.windows}")
             horizon = pd.Timedelta(run.task["horizon"]) if "horizon" in run.task else None
@@ -140,6 +127,12 @@ class Runner:
                 split = random_split(ws, tuple(run.split["fractions"]), seed=run.seed)
             else:
                 split = chronological_split(ws, tuple(run.split["fractions"]), run.split.get("embargo"), horizon)
+            if run.vocabulary.get("kind", "templates") != "templates":
+                # Fitted on the templates of the training windows only; the vocabulary belongs to the
+                # dataset and split, not to a run: a fixed seed. Window times (hence the split) do not change.
+                seen = np.unique(ws.subset(split.train).seq_values)
+                ws = remap_windows(ws, fit_vocabulary(data.templates, seen, run.vocabulary, seed=0))
+                ws.info["vocabulary_seen_templates"] = int(len(seen))
             self._prepared[key] = Prepared(ws, split, truth_labels, horizon)
         return self._prepared[key]
 
