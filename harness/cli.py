@@ -163,6 +163,36 @@ def cmd_report(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_sessions(args: argparse.Namespace) -> int:
+    """Score detectors on preprocessed session files: k-fold false positives over normal sessions, recall on abnormal."""
+    import time
+
+    from logtrial.running.session_kfold import Protocol, _detector, load_protocol, run_protocol, write_outputs
+
+    if args.protocol:
+        if args.normal or args.abnormal:
+            raise ConfigError("sessions: give a protocol file or --normal/--abnormal, not both")
+        proto = load_protocol(Path(args.protocol), Path(args.out) if args.out else None)
+    else:
+        if not (args.normal and args.abnormal):
+            raise ConfigError("sessions: give a protocol file, or both --normal FILE and --abnormal FILE")
+        dets = [_detector(d.strip(), f"--detectors[{i}]") for i, d in enumerate(args.detectors.split(",")) if d.strip()]
+        if args.folds < 2:
+            raise ConfigError(f"--folds: expected a whole number >= 2, got {args.folds}")
+        proto = Protocol("sessions", Path(args.out or "sessions-results"), args.folds, args.seeds, dets,
+                         files={"normal": args.normal, "abnormal": args.abnormal, "first_id": args.first_id},
+                         base=Path("."))
+    print(f"sessions: {proto.name}: {len(proto.detectors)} detector(s) x {len(proto.seeds)} seed(s) x "
+          f"{proto.folds} folds", flush=True)
+    t0 = time.time()
+    rows = run_protocol(proto, progress=not args.quiet)
+    summary = write_outputs(proto, rows, time.time() - t0)
+    print(summary[["detector", "recall", "recall_min", "recall_max", "fpr"]].to_string(index=False,
+                                                                                     float_format="%.4f"))
+    print(f"written: {proto.output / 'report.md'}, summary.csv, results.csv")
+    return 0
+
+
 def cmd_gate(args: argparse.Namespace) -> int:
     """Re-run (or read) an experiment and compare it with the committed reference."""
     import tempfile
@@ -293,6 +323,19 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--tolerance", type=float, help="absolute tolerance (default: the file's gate.tolerance or 0.02)")
     sp.add_argument("--all", action="store_true", help="show every compared figure, not only those that moved")
     sp.add_argument("--quiet", action="store_true", help="no per-run progress")
+
+    sp = verb("sessions", cmd_sessions, "score detectors on preprocessed session files (k-fold over normal sessions)",
+              "logtrial sessions reports/hdfs-sessions/experiment.yaml\n"
+              "  logtrial sessions --normal normal.txt --abnormal abnormal.txt --detectors next_event,pca --out res/")
+    sp.add_argument("protocol", metavar="PROTOCOL.yaml", nargs="?", help="a session k-fold protocol file")
+    sp.add_argument("--normal", metavar="FILE", help="normal sessions: one line of event ids per session")
+    sp.add_argument("--abnormal", metavar="FILE", help="abnormal sessions: one line of event ids per session")
+    sp.add_argument("--first-id", type=int, default=1, help="smallest event id in the files (default 1)")
+    sp.add_argument("--detectors", default="next_event,pca,invariants", help="comma-separated detector names")
+    sp.add_argument("--folds", type=int, default=5, help="folds over the normal sessions (default 5)")
+    sp.add_argument("--seeds", type=int, nargs="+", default=[0], help="seeds (default 0)")
+    sp.add_argument("--out", metavar="DIR", help="output folder (default: the file's `output`, else sessions-results)")
+    sp.add_argument("--quiet", action="store_true", help="no per-fold progress")
 
     from logtrial.demo import add_demo_parser
 
