@@ -176,3 +176,21 @@ def test_hdfs_sessions_are_registered_and_read() -> None:
     s = normal_and_abnormal(folder / "normal.txt", folder / "abnormal.txt")
     assert (s.labels == 0).sum() == 4855 and (s.labels == 1).sum() == 8419
     assert s.values.min() == 0 and s.values.max() <= 27  # ids 1..28 in the files
+
+
+def test_readme_session_examples_run_as_written(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import re
+    import shlex
+
+    readme = (ROOT / "README.md").read_text()
+    blocks = re.findall(r"```(\w*)\n(.*?)```", readme, flags=re.S)
+    command = next(b for lang, b in blocks if not lang and b.startswith("logtrial sessions --normal")).strip()
+    entry = next(b for lang, b in blocks if lang == "yaml" and "my-sessions:" in b)
+    _tiny_files(tmp_path)
+    monkeypatch.chdir(tmp_path)
+    # as written, except the LSTM (minutes on a shared CPU; its own tests cover it): later flags win in argparse
+    argv = shlex.split(command)[1:] + ["--quiet", "--detectors", "pca,invariants"]
+    assert main(argv) == 0 and (tmp_path / "my-sessions" / "summary.csv").is_file()
+    doc = yaml.safe_load(entry.replace("/data/my-sessions", str(tmp_path)))
+    parsed = parse_entry("my-sessions", doc["datasets"]["my-sessions"], "README.md")
+    assert isinstance(parsed, SessionEntry) and parsed.sessions.resolve("my-sessions") == tmp_path
