@@ -194,3 +194,33 @@ def test_readme_session_examples_run_as_written(tmp_path: Path, monkeypatch: pyt
     doc = yaml.safe_load(entry.replace("/data/my-sessions", str(tmp_path)))
     parsed = parse_entry("my-sessions", doc["datasets"]["my-sessions"], "README.md")
     assert isinstance(parsed, SessionEntry) and parsed.sessions.resolve("my-sessions") == tmp_path
+
+
+def test_end_event_flags_sessions_that_stop_early() -> None:
+    # DeepLog's top-g rule (Du et al., CCS 2017) sees nothing wrong in a prefix of a normal path; with the
+    # end-of-session event (on by default for session windows) stopping where no normal session stops is a miss
+    from logtrial.detectors.registry import create
+
+    normal = [[0, 1, 2, 3, 4]] * 60 + [[0, 1, 2, 3, 4, 4]] * 20
+    train = windows_from_sequences(normal, 5)
+    test = windows_from_sequences([[0, 1, 2, 3, 4], [0, 1, 2], [0, 1, 2, 3]], 5)
+    params = {"history": 3, "top_g": 1, "hidden": 16, "embedding": 8, "layers": 1, "epochs": 60, "lr": 0.02,
+              "score": "count", "threads": 1}
+    with_end = create("next_event", params, seed=0).fit(train)
+    assert with_end.info()["end_event"] is True
+    np.testing.assert_array_equal(with_end.score(test) > 0, [False, True, True])
+    without = create("next_event", {**params, "end_event": False}, seed=0).fit(train)
+    assert not (without.score(test) > 0).any()
+
+
+def test_protocol_variants_are_validated(tmp_path: Path) -> None:
+    from logtrial.running.session_kfold import load_protocol
+
+    f = tmp_path / "p.yaml"
+    f.write_text(yaml.safe_dump({"files": {"normal": "n", "abnormal": "a"}, "detectors": [
+        {"name": "next_event", "variants": [{"label": "strict", "params": {"end_top_g": 0}}]}]}))
+    with pytest.raises(ConfigError, match=r"detectors\[0\]\.variants\[0\].*end_top_g"):
+        load_protocol(f)
+    f.write_text(yaml.safe_dump({"files": {"normal": "n", "abnormal": "a"}, "folds": 1, "detectors": ["pca"]}))
+    with pytest.raises(ConfigError, match=r"p\.yaml: folds: expected a whole number >= 2"):
+        load_protocol(f)

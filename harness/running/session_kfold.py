@@ -41,7 +41,7 @@ from logtrial.windowing.windows import WindowSet
 
 DECISIONS = ("above", "q_statistic")
 FIELDS = {"experiment", "description", "output", "dataset", "files", "registry", "folds", "seeds", "detectors",
-          "published", "tolerance"}
+          "published", "tolerance", "gaps"}
 
 
 @dataclass
@@ -52,6 +52,7 @@ class DetectorSpec:
     params: dict
     label: str
     decision: dict
+    variants: list[tuple[str, dict]] = field(default_factory=list)
 
 
 @dataclass
@@ -76,11 +77,18 @@ def _detector(raw: Any, where: str) -> DetectorSpec:
         raw = {"name": raw}
     if not isinstance(raw, dict) or "name" not in raw:
         raise ConfigError(f"{where}: expected a detector name or {{name, params, label, decision}}")
-    unknown = sorted(set(raw) - {"name", "params", "label", "decision"})
+    unknown = sorted(set(raw) - {"name", "params", "label", "decision", "variants"})
     if unknown:
-        raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: decision, label, name, params)")
+        raise ConfigError(f"{where}.{unknown[0]}: unknown field (allowed: decision, label, name, params, variants)")
     params = raw.get("params") or {}
     create(raw["name"], params, seed=0, source=where)  # validates name and params
+    variants = []
+    for i, v in enumerate(raw.get("variants") or []):
+        # score-time settings applied to the same fitted model (e.g. a stricter end-event rule)
+        if not isinstance(v, dict) or set(v) != {"label", "params"} or not isinstance(v["params"], dict):
+            raise ConfigError(f"{where}.variants[{i}]: expected {{label: NAME, params: {{...}}}}")
+        create(raw["name"], {**params, **v["params"]}, seed=0, source=f"{where}.variants[{i}]")
+        variants.append((str(v["label"]), dict(v["params"])))
     # default rules: the Q-statistic for PCA, any anomalous event (score above 0) for the others
     decision = raw.get("decision") or ({"kind": "q_statistic"} if raw["name"] == "pca" else {"kind": "above", "value": 0})
     if not isinstance(decision, dict) or decision.get("kind") not in DECISIONS:
@@ -92,7 +100,7 @@ def _detector(raw: Any, where: str) -> DetectorSpec:
         decision = {"kind": "above", "value": float(value)}
     elif raw["name"] != "pca":
         raise ConfigError(f"{where}.decision: q_statistic is the PCA detector's threshold, not {raw['name']!r}'s")
-    return DetectorSpec(raw["name"], dict(params), str(raw.get("label", raw["name"])), decision)
+    return DetectorSpec(raw["name"], dict(params), str(raw.get("label", raw["name"])), decision, variants)
 
 
 def load_protocol(path: str | Path, output: Path | None = None) -> Protocol:
@@ -116,7 +124,7 @@ def load_protocol(path: str | Path, output: Path | None = None) -> Protocol:
     if not isinstance(raw_dets, list) or not raw_dets:
         raise ConfigError(f"{path}: detectors: expected a non-empty list")
     dets = [_detector(d, f"{path}: detectors[{i}]") for i, d in enumerate(raw_dets)]
-    labels = [d.label for d in dets]
+    labels = [d.label for d in dets] + [label for d in dets for label, _ in d.variants]
     if len(set(labels)) != len(labels):
         raise ConfigError(f"{path}: detectors: labels must be unique, got {labels}")
     files = doc.get("files")
@@ -163,25 +171,33 @@ def run_protocol(proto: Protocol, progress: bool = True) -> pd.DataFrame:
             train = np.sort(np.concatenate([x for j, x in enumerate(folds) if j != f]))
             held_ws, train_ws = ws.subset(np.sort(held)), ws.subset(train)
             for spec in proto.detectors:
-                rows.append(_one(spec, seed, f, train_ws, held_ws, abn_ws))
-                if progress:
-                    r = rows[-1]
-                    print(f"  {spec.label} seed {seed} fold {f + 1}/{proto.folds}: FP {r['fp']}/{r['normal']}, "
-                          f"flagged {r['tp']}/{r['abnormal']} abnormal ({r['cpu_s']:.1f} s CPU)", flush=True)
+                for r in _one(spec, seed, f, train_ws, held_ws, abn_ws):
+                    rows.append(r)
+                    if progress:
+                        print(f"  {r['detector']} seed {seed} fold {f + 1}/{proto.folds}: FP {r['fp']}/{r['normal']}, "
+                              f"flagged {r['tp']}/{r['abnormal']} abnormal ({r['cpu_s']:.1f} s CPU)", flush=True)
     return pd.DataFrame(rows)
 
 
 def _one(spec: DetectorSpec, seed: int, fold: int, train_ws: WindowSet, held_ws: WindowSet,
-         abn_ws: WindowSet) -> dict:
+         abn_ws: WindowSet) -> list[dict]:
+    """Fit once; the figures of the detector and of each score-time variant of it."""
+    out = []
     c0 = time.process_time()
     with pinned_threads():
         det = create(spec.name, spec.params, seed=seed).fit(train_ws)
-        fp = int(flagged(det, spec, det.score(held_ws)).sum())
-        tp = int(flagged(det, spec, det.score(abn_ws)).sum())
-    info = det.info()
-    return {"detector": spec.label, "seed": seed, "fold": fold, "fp": fp, "normal": len(held_ws), "tp": tp,
-            "abnormal": len(abn_ws), "cpu_s": round(time.process_time() - c0, 2),
-            "epochs_run": info.get("epochs_run"), "stopped_early": info.get("stopped_early")}
+        info = det.info()
+        base = det.params
+        for label, over in [(spec.label, {})] + spec.variants:
+            det.params = base.model_copy(update=over)
+            fp = int(flagged(det, spec, det.score(held_ws)).sum())
+            tp = int(flagged(det, spec, det.score(abn_ws)).sum())
+            out.append({"detector": label, "seed": seed, "fold": fold, "fp": fp, "normal": len(held_ws), "tp": tp,
+                        "abnormal": len(abn_ws), "cpu_s": round(time.process_time() - c0, 2),
+                        "epochs_run": info.get("epochs_run"), "stopped_early": info.get("stopped_early")})
+            c0 = time.process_time()
+        det.params = base
+    return out
 
 
 def summarise(rows: pd.DataFrame, published: dict) -> pd.DataFrame:
