@@ -31,6 +31,8 @@ def cmd_datasets(args: argparse.Namespace) -> int:
     from logtrial.data.acquire import status
     from logtrial.data.registry import home_dir
 
+    from logtrial.data.registry import SessionEntry
+
     reg = _registry(args)
     home = home_dir()
     rows = []
@@ -43,12 +45,22 @@ def cmd_datasets(args: argparse.Namespace) -> int:
                 "lines": f"{int(lines):,}" if lines else "?",
                 "labels": e.labels.scheme,
                 "licence": (e.licence.split(":")[0] if e.licence else "-")[:28],
-                "on disk": "generated on demand" if e.generator is not None else status(e, home),
+                "on disk": "generated on demand" if e.generator is not None else _session_status(e) if isinstance(
+                    e, SessionEntry) else status(e, home),
             }
         )
     print(_table(rows, ["name", "system", "lines", "labels", "licence", "on disk"]))
     print(f"\ndata folder: {home}  (set LOGTRIAL_HOME to move it)")
     return 0
+
+
+def _session_status(entry) -> str:
+    """'session files' when a session-file dataset's folder is there, else 'missing (folder)'."""
+    try:
+        entry.sessions.resolve(entry.name)
+    except ConfigError:
+        return "missing (" + (entry.sessions.folder_env or entry.sessions.folder) + ")"
+    return "session files"
 
 
 def cmd_fetch(args: argparse.Namespace) -> int:
