@@ -44,3 +44,32 @@ def test_templates_first_seen_after_training_do_not_change_the_learned_groups() 
     np.testing.assert_array_equal(a[seen], b[seen])
     # the same templates, all seen: a different (transductive) vocabulary would be learned
     assert fit_vocabulary(TRAIN + LATER, np.arange(len(TRAIN) + 3), SPEC, seed=0)[10] != a[10]
+
+
+def test_a_run_learns_its_vocabulary_from_the_training_windows_only(loghub_dir, tmp_path, home, monkeypatch) -> None:
+    # real logs (Loghub BGL 2k): some templates are first seen after the training span; the run's
+    # semantic vocabulary is learned without them, and they are mapped by their words afterwards
+    import yaml
+    from logtrial.running.experiment import load_experiment
+    from logtrial.running.runner import Runner
+
+    monkeypatch.setenv("LOGTRIAL_MIRROR", str(loghub_dir))
+    (tmp_path / "e.yaml").write_text(yaml.safe_dump({
+        "experiment": "v", "output": "out", "datasets": ["bgl-2k"], "windows": [{"kind": "time", "size": "1h"}],
+        "task": {"name": "detect"}, "split": {"kind": "chronological", "fractions": [0.5, 0.2, 0.3]},
+        "noise": [{"name": "clean"}], "detectors": ["rate_rule"], "seeds": [0], "threshold": {"kind": "best_f1"},
+        "vocabularies": [{"kind": "semantic", "k": 8, "epochs": 40}]}))
+    exp = load_experiment(tmp_path / "e.yaml")
+    runner = Runner(exp, home, progress=False)
+    run = exp.runs[0]
+    data = runner.dataset("bgl-2k")
+    prep = runner.prepared(run)
+    from logtrial.windowing.windows import build_windows
+
+    raw = build_windows(data.events, data.vocab_size, run.windows)
+    seen = np.unique(raw.subset(prep.split.train).seq_values)
+    later = np.setdiff1d(np.unique(raw.seq_values), seen)
+    assert len(later) > 0 and prep.windows.info["vocabulary_seen_templates"] == len(seen)
+    expected = fit_vocabulary(data.templates, seen, run.vocabulary, seed=0)
+    np.testing.assert_array_equal(prep.windows.seq_values, expected[raw.seq_values])
+    assert prep.windows.vocab_size == int(expected.max()) + 1

@@ -212,8 +212,8 @@ def fit_vocabulary(templates: list[str], seen: np.ndarray, spec: Any, seed: int)
 
     Word vectors and k-means groups come from the seen templates; every other template goes
     to the group with the nearest centre (cosine) by the mean of its known word vectors, or
-    to the last group, "unseen", when it has no known word. The unseen group always exists,
-    so the vocabulary size is the number of groups + 1.
+    to the group after the learned ones, "unseen", when it has no known word (the vocabulary
+    grows by that one group only when some template falls into it).
     """
     parsed = load_vocabulary_spec(spec)
     if parsed is None:
