@@ -59,11 +59,18 @@ class TwoStageParams(DetectorParams):
     gate_quantile: float = Field(0.9, gt=0.0, lt=1.0, description="stage-one rank quantile above which a window is flagged")
 
 
-def ecdf_rank(reference_sorted: np.ndarray, scores: np.ndarray) -> np.ndarray:
-    """Mid-rank of each score within a sorted reference sample, in [0, 1]."""
+def ecdf_rank(reference_sorted: np.ndarray, scores: np.ndarray, rel_tol: float = 1e-9) -> np.ndarray:
+    """Mid-rank of each score within a sorted reference sample, in [0, 1].
+
+    Values within ``rel_tol`` (relative, at least absolute 1e-12) count as ties: a member's
+    score for a window may differ in its last bits with the batch it is computed in (BLAS
+    kernels vary with the batch size), and that must not move the window's rank.
+    """
     n = len(reference_sorted)
-    lo = np.searchsorted(reference_sorted, scores, side="left")
-    hi = np.searchsorted(reference_sorted, scores, side="right")
+    scores = np.asarray(scores, dtype=np.float64)
+    tol = np.maximum(np.abs(scores) * rel_tol, 1e-12)
+    lo = np.searchsorted(reference_sorted, scores - tol, side="left")
+    hi = np.searchsorted(reference_sorted, scores + tol, side="right")
     return (lo + hi) / (2.0 * n)
 
 

@@ -29,7 +29,7 @@ def _registry(args: argparse.Namespace):
 def cmd_datasets(args: argparse.Namespace) -> int:
     """List the registry and what is on disk."""
     from logtrial.data.acquire import partial_downloads, status
-    from logtrial.data.registry import home_dir
+    from logtrial.data.registry import SessionEntry, home_dir
 
     reg = _registry(args)
     home = home_dir()
@@ -44,7 +44,8 @@ def cmd_datasets(args: argparse.Namespace) -> int:
                 "lines": f"{int(lines):,}" if lines else "?",
                 "labels": e.labels.scheme,
                 "licence": (e.licence.split(":")[0] if e.licence else "-")[:28],
-                "on disk": "generated on demand" if e.generator is not None else status(e, home),
+                "on disk": "generated on demand" if e.generator is not None else _session_status(e) if isinstance(
+                    e, SessionEntry) else status(e, home),
             }
         )
         parts += [f"  {path} ({size / 2**20:.1f} MiB): kept so that `logtrial fetch {name}` resumes it; "
@@ -54,6 +55,15 @@ def cmd_datasets(args: argparse.Namespace) -> int:
         print("\npartial downloads:\n" + "\n".join(parts))
     print(f"\ndata folder: {home}  (set LOGTRIAL_HOME to move it)")
     return 0
+
+
+def _session_status(entry) -> str:
+    """'session files' when a session-file dataset's folder is there, else 'missing (folder)'."""
+    try:
+        entry.sessions.resolve(entry.name)
+    except ConfigError:
+        return "missing (" + (entry.sessions.folder_env or entry.sessions.folder) + ")"
+    return "session files"
 
 
 def cmd_fetch(args: argparse.Namespace) -> int:
@@ -233,6 +243,36 @@ def cmd_report(args: argparse.Namespace) -> int:
 
     if (exp.output / TRACKING_DB).is_file():  # runs made with --no-track have nothing to browse
         print(f"tracking: mlflow ui --backend-store-uri {tracking_uri(exp.output)}")
+    return 0
+
+
+def cmd_sessions(args: argparse.Namespace) -> int:
+    """Score detectors on preprocessed session files: k-fold false positives over normal sessions, recall on abnormal."""
+    import time
+
+    from logtrial.running.session_kfold import Protocol, _detector, load_protocol, run_protocol, write_outputs
+
+    if args.protocol:
+        if args.normal or args.abnormal:
+            raise ConfigError("sessions: give a protocol file or --normal/--abnormal, not both")
+        proto = load_protocol(Path(args.protocol), Path(args.out) if args.out else None)
+    else:
+        if not (args.normal and args.abnormal):
+            raise ConfigError("sessions: give a protocol file, or both --normal FILE and --abnormal FILE")
+        dets = [_detector(d.strip(), f"--detectors[{i}]") for i, d in enumerate(args.detectors.split(",")) if d.strip()]
+        if args.folds < 2:
+            raise ConfigError(f"--folds: expected a whole number >= 2, got {args.folds}")
+        proto = Protocol("sessions", Path(args.out or "sessions-results"), args.folds, args.seeds, dets,
+                         files={"normal": args.normal, "abnormal": args.abnormal, "first_id": args.first_id},
+                         base=Path("."))
+    print(f"sessions: {proto.name}: {len(proto.detectors)} detector(s) x {len(proto.seeds)} seed(s) x "
+          f"{proto.folds} folds", flush=True)
+    t0 = time.time()
+    rows = run_protocol(proto, progress=not args.quiet)
+    summary = write_outputs(proto, rows, time.time() - t0)
+    print(summary[["detector", "recall", "recall_min", "recall_max", "fpr"]].to_string(index=False,
+                                                                                     float_format="%.4f"))
+    print(f"written: {proto.output / 'report.md'}, summary.csv, results.csv")
     return 0
 
 
@@ -436,6 +476,19 @@ def build_parser() -> argparse.ArgumentParser:
                     help="delay model; auto: exponential unless a KS test rejects it at 5%% (default: %(default)s)")
     sp.add_argument("--name", help="name of the noise setting (default: fitted-<file stem>)")
     sp.add_argument("--figure", metavar="PNG", help="delay goodness-of-fit figure (default: beside --out)")
+
+    sp = verb("sessions", cmd_sessions, "score detectors on preprocessed session files (k-fold over normal sessions)",
+              "logtrial sessions reports/hdfs-sessions/experiment.yaml\n"
+              "  logtrial sessions --normal normal.txt --abnormal abnormal.txt --detectors next_event,pca --out res/")
+    sp.add_argument("protocol", metavar="PROTOCOL.yaml", nargs="?", help="a session k-fold protocol file")
+    sp.add_argument("--normal", metavar="FILE", help="normal sessions: one line of event ids per session")
+    sp.add_argument("--abnormal", metavar="FILE", help="abnormal sessions: one line of event ids per session")
+    sp.add_argument("--first-id", type=int, default=1, help="smallest event id in the files (default 1)")
+    sp.add_argument("--detectors", default="next_event,pca,invariants", help="comma-separated detector names")
+    sp.add_argument("--folds", type=int, default=5, help="folds over the normal sessions (default 5)")
+    sp.add_argument("--seeds", type=int, nargs="+", default=[0], help="seeds (default 0)")
+    sp.add_argument("--out", metavar="DIR", help="output folder (default: the file's `output`, else sessions-results)")
+    sp.add_argument("--quiet", action="store_true", help="no per-fold progress")
 
     from logtrial.demo import add_demo_parser
 

@@ -80,6 +80,23 @@ def test_deterministic_given_seed(name: str) -> None:
 
 
 @pytest.mark.parametrize("name", NAMES)
+def test_scores_do_not_depend_on_the_batch(name: str) -> None:
+    # a window's score is a function of the fitted model and that window only: one batch, one
+    # window at a time and shuffled chunks of uneven size give the same numbers (float32 nets
+    # may differ in the last bits between batch sizes, hence the relative tolerance of 1e-6)
+    det, ws, _ = _fitted(name)
+    whole = det.score(ws)
+    probe = np.r_[np.arange(0, len(ws), 9), np.arange(len(ws) - 12, len(ws))]
+    singles = np.array([det.score(ws.subset(np.array([i])))[0] for i in probe])
+    np.testing.assert_allclose(singles, whole[probe], rtol=1e-6, atol=1e-9)
+    order = np.random.default_rng(5).permutation(len(ws))
+    chunked = np.empty(len(ws))
+    for lo, hi in zip([0, 7, 40, 41, 130], [7, 40, 41, 130, len(ws)]):
+        chunked[order[lo:hi]] = det.score(ws.subset(order[lo:hi]))
+    np.testing.assert_allclose(chunked, whole, rtol=1e-6, atol=1e-9)
+
+
+@pytest.mark.parametrize("name", NAMES)
 def test_refuses_wrong_vocabulary(name: str) -> None:
     det, _, _ = _fitted(name)
     other = windows_from_counts(np.ones((4, VOCAB + 3), dtype=np.int64))

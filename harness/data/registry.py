@@ -281,6 +281,58 @@ def inside_folder(path: str | None) -> str | None:
         raise ValueError(f"{path!r} must be a relative path inside the dataset folder (no '..', not absolute)")
     return path
 
+class SessionFiles(_Strict):
+    """Preprocessed session files: one session of event ids per line (normal + abnormal files), or a labelled CSV."""
+
+    folder: str
+    folder_env: str | None = None
+    normal: str | None = None
+    abnormal: str | None = None
+    file: str | None = None
+    sequence: str = "events"
+    label: str = "label"
+    anomalous: str = "1"
+    key: str | None = None
+    first_id: int = Field(1, ge=0, description="the smallest event id in the files (shifted to 0)")
+    vocab_size: int | None = Field(None, ge=1, description="distinct event ids; default: the largest id seen + 1")
+    order_seed: int = Field(0, description="seed of the order sessions are laid out in (files carry no time)")
+
+    @field_validator("normal", "abnormal", "file")
+    @classmethod
+    def _inside(cls, v: str | None) -> str | None:
+        return inside_folder(v)
+
+    @model_validator(mode="after")
+    def _one_layout(self) -> "SessionFiles":
+        pair = self.normal is not None and self.abnormal is not None
+        if pair == (self.file is not None) or (not pair and (self.normal or self.abnormal)):
+            raise ValueError("give either `normal` and `abnormal` (one session per line each) or `file` (a CSV with "
+                             "a sequence and a label column)")
+        return self
+
+    def resolve(self, name: str) -> Path:
+        """The folder holding the files: $folder_env when set, else ``folder`` (relative to the working directory)."""
+        raw = os.environ.get(self.folder_env, "") if self.folder_env else ""
+        folder = Path(raw or self.folder)
+        if not folder.is_absolute() and not folder.exists() and (REPO_ROOT / folder).exists():
+            folder = REPO_ROOT / folder
+        if not folder.is_dir():
+            hint = f" (set {self.folder_env})" if self.folder_env else ""
+            raise ConfigError(f"dataset '{name}': sessions.folder {folder} not found{hint}")
+        return folder
+
+
+class SessionEntry(Entry):
+    """A dataset of preprocessed sessions (event-id sequences) instead of log lines: no sources, format or miner."""
+
+    logs: list[str] = Field(default_factory=list)
+    format: LineFormat | None = None
+    sessions: SessionFiles
+
+    @model_validator(mode="after")
+    def _has_origin(self) -> "SessionEntry":
+        return self
+
 
 def _compile(rx: str) -> re.Pattern[str]:
     try:
@@ -354,7 +406,7 @@ def parse_entry(name: str, raw: Any, origin: str, defaults: dict | None = None) 
         raise ConfigError(f"{origin}: dataset '{name}': expected a mapping of fields, got {type(raw).__name__}")
     data = {**(defaults or {}), **raw, "name": name}
     try:
-        return Entry.model_validate(data)
+        return (SessionEntry if "sessions" in raw else Entry).model_validate(data)
     except ValidationError as exc:
         raise ConfigError(f"{origin}: dataset '{name}': {_describe(exc)}") from None
 

@@ -258,7 +258,7 @@ def _inline_dataset(raw: dict, where: str, base: Path) -> str:
 
 
 # Registry fields that change what a dataset's events or truth are (not its description).
-_ENTRY_FIELDS = {"sources", "logs", "format", "labels", "miner", "generator"}
+_ENTRY_FIELDS = {"sources", "logs", "format", "labels", "miner", "generator", "sessions"}
 
 
 def entry_fingerprint(entry) -> str:

@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 from logtrial.data.acquire import log_files
 from logtrial.data.ingest import dataset_folder, ingest_files, read_events
-from logtrial.data.registry import get_entry, load_registry
+from logtrial.data.registry import SessionEntry, get_entry, load_registry
 from logtrial.detectors.base import Detector
 from logtrial.detectors.registry import create
 from logtrial.errors import DataError
@@ -27,10 +27,13 @@ from logtrial.evaluation.curves import CURVE_NOTE, operating_curve
 from logtrial.evaluation.run_figures import evaluate_run, window_metrics_safe
 from logtrial.evaluation.thresholds import ThresholdChoice, budget_key, budget_policy, choose_threshold, load_policy
 from logtrial.labels.noise import load_noise, replay
+from logtrial.labels.incidents import incidents_from_sessions
 from logtrial.labels.truth import truth_incidents
 from logtrial.running.experiment import Experiment, RunConfig, describe_failure
+from logtrial.running.threads import pinned_threads
+from logtrial.windowing.sessions import load_entry_sessions, session_events
 from logtrial.windowing.splits import check_no_leakage, chronological_split, random_split
-from logtrial.windowing.vocabulary import apply_vocabulary
+from logtrial.windowing.vocabulary import fit_vocabulary, remap_windows
 from logtrial.windowing.windows import build_windows, label_windows
 
 RESULT_VERSION = 1
@@ -87,7 +90,6 @@ class Runner:
         self.progress = progress
         self._datasets: dict[str, DatasetData] = {}
         self._prepared: dict[str, Prepared] = {}
-        self._vocabularies: dict[str, tuple[pd.DataFrame, int]] = {}
         self._fits: dict[str, tuple[np.ndarray, np.ndarray, dict]] = {}
         self._last_scores: dict[str, pd.DataFrame] = {}
 
@@ -96,6 +98,9 @@ class Runner:
         """Events and truth incidents of a dataset (ingested or reused from the cache)."""
         if name not in self._datasets:
             entry = get_entry(name, load_registry(self.exp.registry_files))
+            if isinstance(entry, SessionEntry):  # preprocessed sessions: no log lines to ingest
+                self._datasets[name] = session_dataset(entry)
+                return self._datasets[name]
             folder = dataset_folder(entry, self.home, self.mirror, progress=self.progress)
             files = log_files(entry, folder)
             res = ingest_files(entry.name, files, entry.format, entry.miner, self.home / "tables",
@@ -107,26 +112,14 @@ class Runner:
                                                res.manifest["key"], templates)
         return self._datasets[name]
 
-    def events_for(self, run: RunConfig) -> tuple[pd.DataFrame, int]:
-        """The dataset's events in the run's vocabulary (template ids, or semantic groups) and its size."""
-        data = self.dataset(run.dataset)
-        if run.vocabulary.get("kind", "templates") == "templates":
-            return data.events, data.vocab_size
-        key = json.dumps([run.dataset, run.vocabulary], sort_keys=True)
-        if key not in self._vocabularies:
-            # The vocabulary belongs to the dataset, not to a run: a fixed seed.
-            self._vocabularies[key] = apply_vocabulary(data.events, data.templates, run.vocabulary, seed=0)
-        return self._vocabularies[key]
-
     def prepared(self, run: RunConfig) -> Prepared:
-        """Windows, truth labels and the split for a run's dataset, windowing, task and split."""
+        """Windows (in the run's vocabulary), truth labels and the split for a run's dataset, windowing, task and split."""
         # A random split draws with the run's seed, so it is shared only between runs with that seed.
         seed = run.seed if run.split["kind"] == "random" else None
-        key = json.dumps([run.dataset, run.windows, run.task, run.split, seed], sort_keys=True)
+        key = json.dumps([run.dataset, run.windows, run.task, run.split, seed, run.vocabulary], sort_keys=True)
         if key not in self._prepared:
             data = self.dataset(run.dataset)
-            events, vocab_size = self.events_for(run)
-            ws = build_windows(events, vocab_size, run.windows)
+            ws = build_windows(data.events, data.vocab_size, run.windows)
             if len(ws) == 0:
                 raise DataError(f"dataset '{run.dataset}': no windows for {run.windows}")
             horizon = pd.Timedelta(run.task["horizon"]) if "horizon" in run.task else None
@@ -135,12 +128,24 @@ class Runner:
                 split = random_split(ws, tuple(run.split["fractions"]), seed=run.seed)
             else:
                 split = chronological_split(ws, tuple(run.split["fractions"]), run.split.get("embargo"), horizon)
+            if run.vocabulary.get("kind", "templates") != "templates":
+                # Fitted on the templates of the training windows only; the vocabulary belongs to the
+                # dataset and split, not to a run: a fixed seed. Window times (hence the split) do not change.
+                seen = np.unique(ws.subset(split.train).seq_values)
+                ws = remap_windows(ws, fit_vocabulary(data.templates, seen, run.vocabulary, seed=0))
+                ws.info["vocabulary_seen_templates"] = int(len(seen))
             self._prepared[key] = Prepared(ws, split, truth_labels, horizon)
         return self._prepared[key]
 
     # ----- one run, step by step -----------------------------------------------------------
     def execute(self, run: RunConfig) -> dict:
-        """Run one config end to end and return its record (not yet stored)."""
+        """Run one config end to end, its numeric libraries pinned to one thread, and return its record."""
+        with pinned_threads() as threads:
+            record = self._execute(run)
+        record["threads"] = threads
+        return record
+
+    def _execute(self, run: RunConfig) -> dict:
         t0 = time.time()
         data = self.dataset(run.dataset)
         prep = self.prepared(run)
@@ -284,6 +289,14 @@ class Runner:
             record = self.safe_execute(run)
             out.append((record, self._last_scores.pop(run.run_id, None)))
         return out
+
+
+def session_dataset(entry: SessionEntry) -> DatasetData:
+    """A session-file dataset as an event table (sessions in a seeded order), its truth and identity."""
+    sessions, vocab, key = load_entry_sessions(entry)
+    events = session_events(sessions, entry.sessions.order_seed)
+    truth = incidents_from_sessions(events, sessions.keys[sessions.labels == 1])
+    return DatasetData(entry.name, events, vocab, truth, key, [f"event {i + entry.sessions.first_id}" for i in range(vocab)])
 
 
 def training_windows(det: Detector, train: np.ndarray, rep_labels: np.ndarray) -> np.ndarray:

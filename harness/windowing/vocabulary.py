@@ -5,6 +5,11 @@ bag-of-words word2vec model (Mikolov et al., 2013; full softmax, trained here in
 the templates themselves), averages each template's token vectors, and groups the
 templates into ``k`` clusters with k-means (scikit-learn). Experiments can then compare
 detectors on the mined template ids against the coarser semantic groups.
+
+In a run the vocabulary is fitted on the templates seen in the training windows only
+(``fit_vocabulary``): templates first seen later are placed in the group whose centre is
+nearest to the mean of their *known* word vectors (words never seen in training are
+ignored), and in an explicit extra "unseen" group when none of their words is known.
 """
 
 from __future__ import annotations
@@ -200,3 +205,38 @@ def remap_windows(windows: WindowSet, mapping: np.ndarray) -> WindowSet:
         seq_values=mapping[windows.seq_values].astype(windows.seq_values.dtype), seq_offsets=windows.seq_offsets.copy(),
         vocab_size=n_groups, labels=None if windows.labels is None else windows.labels.copy(), info=dict(windows.info),
     )
+
+
+def fit_vocabulary(templates: list[str], seen: np.ndarray, spec: Any, seed: int) -> np.ndarray:
+    """Group of every template id, learned from the ``seen`` (training) templates only.
+
+    Word vectors and k-means groups come from the seen templates; every other template goes
+    to the group with the nearest centre (cosine) by the mean of its known word vectors, or
+    to the group after the learned ones, "unseen", when it has no known word (the vocabulary
+    grows by that one group only when some template falls into it).
+    """
+    parsed = load_vocabulary_spec(spec)
+    if parsed is None:
+        raise ConfigError("vocabulary: fit_vocabulary needs a semantic vocabulary spec")
+    seen = np.unique(np.asarray(seen, dtype=np.int64))
+    if len(seen) and (seen.min() < 0 or seen.max() >= len(templates)):
+        raise DataError(f"vocabulary: seen template ids span {seen.min()}..{seen.max()}, {len(templates)} templates given")
+    train_texts = [templates[i] for i in seen]
+    vectors = cbow_vectors([tokenize(t) for t in train_texts], dim=parsed.dim, window=parsed.window,
+                           epochs=parsed.epochs, lr=parsed.lr, seed=seed)
+    all_vec = template_vectors(templates, vectors, parsed.dim)
+    norms = np.linalg.norm(all_vec, axis=1, keepdims=True)
+    unit = np.divide(all_vec, norms, out=np.zeros_like(all_vec), where=norms > 0)
+    groups = group_templates(all_vec[seen], parsed.k, seed) if len(seen) else np.zeros(0, np.int32)
+    n_groups = int(groups.max()) + 1 if len(groups) else 0
+    centres = np.zeros((n_groups, parsed.dim))
+    np.add.at(centres, groups, unit[seen])
+    c_norm = np.linalg.norm(centres, axis=1, keepdims=True)
+    centres = np.divide(centres, c_norm, out=np.zeros_like(centres), where=c_norm > 0)
+    mapping = np.full(len(templates), n_groups, dtype=np.int32)  # the unseen group
+    mapping[seen] = groups
+    later = np.setdiff1d(np.arange(len(templates)), seen)
+    known = later[norms[later, 0] > 0] if n_groups else later[:0]
+    if len(known):
+        mapping[known] = np.argmax(unit[known] @ centres.T, axis=1).astype(np.int32)
+    return mapping
