@@ -278,7 +278,7 @@ def clean_stale_temporaries(out_root: Path) -> list[Path]:
             continue
         try:
             owner = json.loads((tmp / _OWNER).read_text())
-            alive = owner.get("host") != host or _pid_alive(int(owner["pid"]))
+            alive = owner.get("host") != host or pid_alive(int(owner["pid"]))
         except (OSError, ValueError, KeyError, TypeError):
             # No readable owner: only a folder older than a minute (the owner is written right after creation).
             alive = time.time() - tmp.stat().st_mtime < 60
@@ -291,7 +291,7 @@ def clean_stale_temporaries(out_root: Path) -> list[Path]:
     return removed
 
 
-def _pid_alive(pid: int) -> bool:
+def pid_alive(pid: int) -> bool:
     """Tell whether a process with this id runs on this machine."""
     try:
         os.kill(pid, 0)

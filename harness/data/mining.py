@@ -223,17 +223,16 @@ class DrainMiner:
             return self.add_many_masked(mask_contents(contents, self._mask_texts).to_pylist())
         with _gc_paused():
             ids = self._assign_all(contents)
-        out = np.array(ids, dtype=np.int32)
-        n_templates = len(self._templates)
-        self._grow_counts(n_templates)
-        if len(out):
-            self._counts[:n_templates] += np.bincount(out, minlength=n_templates)
-        return out
+        return self._counted(ids)
 
     def add_many_masked(self, masked: Sequence[str]) -> np.ndarray:
         """Assign contents already masked (by `mask_patterns()`, in order) in order; return template ids as int32."""
         with _gc_paused():
             ids = self._assign_all_masked(masked)
+        return self._counted(ids)
+
+    def _counted(self, ids: list[int]) -> np.ndarray:
+        """The assigned ids as int32, added to the per-template line counts."""
         out = np.array(ids, dtype=np.int32)
         n_templates = len(self._templates)
         self._grow_counts(n_templates)

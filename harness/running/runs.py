@@ -11,6 +11,7 @@ import sys
 from pathlib import Path
 from typing import Callable, Iterator
 
+from logtrial.data.ingest import pid_alive
 from logtrial.errors import DataError, LogtrialError
 from logtrial.running.engines import make_engine
 from logtrial.running.experiment import Experiment, RunConfig, describe_failure
@@ -24,16 +25,6 @@ class OutputBusy(LogtrialError):
     """Another `logtrial run` holds the output folder."""
 
     exit_code = 1
-
-
-def _alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 def _holder_text(info: dict) -> str:
@@ -71,7 +62,7 @@ def output_lock(output: Path, progress: bool = True) -> Iterator[None]:
                              "or give this run another --out DIR") from None
         if previous.get("pid"):
             here = previous.get("host") == socket.gethostname()
-            if here and _alive(int(previous["pid"])) and int(previous["pid"]) != os.getpid():
+            if here and pid_alive(int(previous["pid"])) and int(previous["pid"]) != os.getpid():
                 fcntl.flock(fh, fcntl.LOCK_UN)
                 raise OutputBusy(f"{output}: another `logtrial run` is using this output folder "
                                  f"({_holder_text(previous)}); wait for it to finish or stop it")
