@@ -28,7 +28,8 @@ QUIET = {"failures": {"rate_per_node_year": 0.0},
                        "firmware_rollouts_per_year": 0.0, "network_blips_per_node_year": 0.0}}
 BUSY = {"days": 20, "nodes": 12, "failures": {"rate_per_node_year": 40.0},
         "anomalies": {"maintenance_per_node_year": 20.0, "power_dips_per_year": 120.0,
-                      "firmware_rollouts_per_year": 30.0, "network_blips_per_node_year": 30.0}}
+                      "firmware_rollouts_per_year": 30.0, "network_blips_per_node_year": 30.0},
+        "drift": {"enabled": True}}
 ROLE = np.array([t.role for t in TEMPLATES])
 
 
@@ -132,7 +133,9 @@ def test_ingests_with_zero_quarantine_and_drain_parse_score(busy, tmp_path: Path
     assert out.manifest["quarantined"] == 0 and out.manifest["rows"] == res.lines
     events = read_events(out.events)
     truth = np.load(res.line_templates_path)
-    assert len(np.unique(truth)) == res.templates_used == len(TEMPLATES)  # the busy scenario uses every template
+    # the busy scenario uses every template except reworded forms of roll-outs that did not happen
+    assert len(np.unique(truth)) == res.templates_used
+    assert set(np.flatnonzero(ROLE != "variant")) <= set(np.unique(truth.astype(np.int64)))
     assert 30 <= out.manifest["templates"] <= 150  # issue [B]: a few dozen to ~150 templates
     score = grouping_accuracy(truth, events["event"].to_numpy())
     assert score >= 0.95, score

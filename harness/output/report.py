@@ -297,6 +297,9 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
     if failed:
         md += [f"{len(failed)} run(s) failed:", ""] + [f"- `{r['run_id']}`: {r.get('error', '')}" for r in failed] + [""]
     md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs]
+    from logtrial.output.sections import extra_sections
+
+    md += extra_sections(records, store, out)
     (out / "report.md").write_text("\n".join(md))
     imgs = "".join(f'<figure><img alt="{html.escape(n)}" src="data:image/png;base64,{base64.b64encode(b).decode()}">'
                    f"</figure>" for n, b in pngs.items())

@@ -11,7 +11,7 @@ import hashlib
 import json
 import time
 import traceback
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Iterable
 
@@ -28,6 +28,7 @@ from logtrial.evaluation.thresholds import ThresholdChoice, choose_threshold, lo
 from logtrial.labels.noise import load_noise, replay
 from logtrial.labels.truth import truth_incidents
 from logtrial.running.experiment import Experiment, RunConfig, describe_failure
+from logtrial.running.walk_forward import combine_folds, figures_by_age, fold_splits, is_walk_forward, policies
 from logtrial.windowing.splits import check_no_leakage, chronological_split, random_split
 from logtrial.windowing.vocabulary import apply_vocabulary
 from logtrial.windowing.windows import build_windows, label_windows
@@ -122,6 +123,11 @@ class Runner:
         # A random split draws with the run's seed, so it is shared only between runs with that seed.
         seed = run.seed if run.split["kind"] == "random" else None
         key = json.dumps([run.dataset, run.windows, run.task, run.split, seed], sort_keys=True)
+        if key not in self._prepared and is_walk_forward(run.split):
+            # one fold of a walk-forward evaluation: the shared windows, this fold's split
+            base = self.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]}))
+            fold = fold_splits(base.windows, run.split, base.horizon)[run.split["fold"]]
+            self._prepared[key] = Prepared(base.windows, fold, base.truth_labels, base.horizon)
         if key not in self._prepared:
             data = self.dataset(run.dataset)
             events, vocab_size = self.events_for(run)
@@ -140,6 +146,8 @@ class Runner:
     # ----- one run, step by step -----------------------------------------------------------
     def execute(self, run: RunConfig) -> dict:
         """Run one config end to end and return its record (not yet stored)."""
+        if is_walk_forward(run.split) and "fold" not in run.split:
+            return self.execute_folds(run)
         t0 = time.time()
         data = self.dataset(run.dataset)
         prep = self.prepared(run)
@@ -155,7 +163,7 @@ class Runner:
         # Also score the test windows against the reported (noisy) labels, to show how noise distorts scores.
         as_reported = window_metrics_safe(rep_labels[prep.split.test], fit.test_scores, choice.threshold)
         self._last_scores[run.run_id] = score_table(prep, fit, val_labels)
-        return {
+        record = {
             "run_id": run.run_id,
             "status": "finished",
             "config": run.canonical(),
@@ -174,6 +182,35 @@ class Runner:
             "timing": {"fit_s": round(fit.fit_s, 3), "score_s": round(fit.score_s, 3),
                        "total_s": round(time.time() - t0, 3), "reused_fit": fit.reused},
             "result_version": RESULT_VERSION,
+        }
+        if is_walk_forward(run.split):
+            record["walk_forward_fold"] = self.by_age(run, data, prep, fit.test_scores, record)
+        return record
+
+    def execute_folds(self, run: RunConfig) -> dict:
+        """A walk-forward run: every fold as its own run (own fit, threshold, test span), combined into one record."""
+        prep = self.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]}))
+        n = len(fold_splits(prep.windows, run.split, prep.horizon))
+        folds = [replace(run, split={**run.split, "fold": i}) for i in range(n)]
+        records = [self.execute(f) for f in folds]
+        scores = [self._last_scores.pop(f.run_id) for f in folds]
+        self._last_scores[run.run_id] = scores[-1]
+        out = combine_folds(records, run.split)
+        out.update(run_id=run.run_id, config=run.canonical())
+        return out
+
+    def by_age(self, run: RunConfig, data: DatasetData, prep: Prepared, test_scores: np.ndarray, record: dict) -> dict:
+        """One fold's test figures per model-age bin, at the chosen threshold and at each alarm budget."""
+        meta, split = prep.windows.meta, prep.split
+        lo, hi = split.ranges["test"]
+        count_from = lo + prep.horizon if prep.horizon is not None and lo + prep.horizon < hi else lo
+        test_meta = meta.iloc[split.test].reset_index(drop=True)
+        return {
+            "ranges": {k: [str(a), str(b)] for k, (a, b) in split.ranges.items()},
+            "by_age": {name: figures_by_age(test_meta, test_scores, value, data.truth, prep.horizon,
+                                            pd.Timedelta(run.scoring["cooldown"]), (lo, hi), count_from,
+                                            pd.Timedelta(run.split["age_bin"]))
+                       for name, value in policies(record).items()},
         }
 
     def reported_labels(self, run: RunConfig, data: DatasetData, prep: Prepared) -> tuple[pd.DataFrame, np.ndarray]:

@@ -1,0 +1,128 @@
+"""Model age: failures predicted against the time since the model was trained (walk-forward runs).
+
+Reads the ``walk_forward`` block of run records (see running/walk_forward.py): per alarm
+policy (the chosen threshold, and each alarm budget when the experiment has budgets), the
+failures and failures predicted per model-age bin, pooled over folds and seeds. It states the
+retraining interval: the first model age at which the share of failures predicted is more
+than the stated tolerance below that of a freshly trained model.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+
+
+def figure_at(rec: dict, budget: str | None, name: str) -> float:
+    """A headline figure of a run at an alarm budget (key as ``format(b, 'g')``), else at the chosen threshold."""
+    entry = rec if budget is None else rec.get("at_budget", {}).get(budget, rec)
+    return entry["metrics"][name]
+
+
+def age_table(records: list[dict]) -> pd.DataFrame:
+    """One row per (detector, noise, task, policy, age bin): failures and failures predicted, pooled over seeds."""
+    rows = []
+    for r in records:
+        wf = r.get("walk_forward") if r.get("status") == "finished" else None
+        if not wf:
+            continue
+        cfg = r["config"]
+        det = cfg["detector"].get("label") or cfg["detector"]["name"]
+        task = " ".join(f"{k}={v}" for k, v in cfg["task"].items())
+        for policy, bins in wf["by_age"].items():
+            budget = policy.removeprefix("budget ") if policy.startswith("budget ") else None
+            last_fold = figure_at(r, budget, "recall_predicted")
+            for b in bins:
+                rows.append({"detector": det, "noise": cfg["noise"].get("name", "clean"), "task": task,
+                             "policy": policy, "age_days": b["age_days"], "failures": b["failures"],
+                             "predicted": b["predicted"], "folds": b["folds"], "tolerance": wf["tolerance"],
+                             "last_fold_recall": last_fold})
+    if not rows:
+        return pd.DataFrame()
+    df = pd.DataFrame(rows)
+    keys = ["detector", "noise", "task", "policy", "age_days"]
+    out = df.groupby(keys, sort=False).agg(failures=("failures", "sum"), predicted=("predicted", "sum"),
+                                           folds=("folds", "sum"), tolerance=("tolerance", "first"),
+                                           last_fold_recall=("last_fold_recall", "mean")).reset_index()
+    out["recall_predicted"] = out["predicted"] / out["failures"].where(out["failures"] > 0)
+    return out
+
+
+def retrain_after(group: pd.DataFrame, tolerance: float) -> float | None:
+    """First model age (days) whose share predicted is more than ``tolerance`` below the first bin's; None if none."""
+    g = group[group["failures"] > 0].sort_values("age_days")
+    if len(g) < 2:
+        return None
+    fresh = float(g["recall_predicted"].iloc[0])
+    late = g[g["recall_predicted"] < fresh - tolerance]
+    return float(late["age_days"].iloc[0]) if len(late) else None
+
+
+def age_figure(table: pd.DataFrame, policy: str):
+    """Share of failures predicted against model age, one line per detector and noise level."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    fig, ax = plt.subplots(figsize=(7, 4))
+    for (det, noise, task), g in table[table["policy"] == policy].groupby(["detector", "noise", "task"], sort=False):
+        ax.plot(g["age_days"], g["recall_predicted"], marker="o", label=f"{det} ({noise}, {task})")
+    ax.set_xlabel("model age at the failure (days since the model went live)")
+    ax.set_ylabel("share of failures predicted")
+    ax.set_ylim(0, 1.02)
+    ax.set_title(f"Failures predicted against model age ({policy})")
+    ax.legend(fontsize=7)
+    fig.tight_layout()
+    return fig
+
+
+def model_age_section(records: list[dict], out: Path) -> list[str]:
+    """Markdown lines (and model_age.png) for walk-forward runs: figures against model age, retraining interval."""
+    table = age_table(records)
+    if table.empty:
+        return []
+    table.to_csv(Path(out) / "model_age.csv", index=False, float_format="%.6g")
+    lines = ["## Figures against model age (walk-forward)", "",
+             "Each fold retrains, picks its threshold on the validation span after its training span, and is "
+             "tested on the span after that. A failure's model age is the time from the start of its fold's test "
+             "span to the failure; counts are added up over folds and seeds. `k/n` = failures predicted / failures.",
+             ""]
+    for policy in table["policy"].drop_duplicates():
+        sub = table[table["policy"] == policy]
+        ages = list(sub["age_days"].drop_duplicates())
+        head = ["detector", "noise", "task"] + [f"{a:g} d" for a in ages] + ["retrain within"]
+        lines += [f"### At {'the chosen threshold' if policy == 'threshold' else 'alarm ' + policy}", "",
+                  "| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
+        for (det, noise, task), g in sub.groupby(["detector", "noise", "task"], sort=False):
+            tol = float(g["tolerance"].iloc[0])
+            cells = []
+            for a in ages:
+                row = g[g["age_days"] == a]
+                if row.empty or int(row["failures"].iloc[0]) == 0:
+                    cells.append("–")
+                else:
+                    k, n = int(row["predicted"].iloc[0]), int(row["failures"].iloc[0])
+                    cells.append(f"{k}/{n} ({k / n:.2f})")
+            after = retrain_after(g, tol)
+            when = (f"{after:g} days (drop > {tol:.0%})" if after is not None
+                    else f"no drop > {tol:.0%} within {max(ages) + (ages[1] - ages[0] if len(ages) > 1 else 0):g} days")
+            lines.append("| " + " | ".join([det, noise, task, *cells, when]) + " |")
+        lines.append("")
+        verdicts = []
+        for (det, noise, task), g in sub.groupby(["detector", "noise", "task"], sort=False):
+            after = retrain_after(g, float(g["tolerance"].iloc[0]))
+            if after is not None:
+                verdicts.append(f"- `{det}` ({noise}, {task}): failures predicted drop by more than "
+                                f"{float(g['tolerance'].iloc[0]):.0%} once the model is {after:g} days old: "
+                                f"retrain at least every {max(after, 1):g} days.")
+        lines += verdicts + ([""] if verdicts else [])
+    fig = age_figure(table, "threshold")
+    fig.savefig(Path(out) / "model_age.png", dpi=110)
+    import matplotlib.pyplot as plt
+
+    plt.close(fig)
+    lines += ["![model age](model_age.png)", ""]
+    return lines
+
