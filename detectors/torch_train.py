@@ -291,8 +291,8 @@ def train(
                 last_line = now
                 done = max(epoch + 1, 1)
                 left = min(params.epochs - done, max(0.0, (budget - total_steps) / max(steps, 1)))
-                print(f"  {what}: epoch {done}/{params.epochs}, {total_steps} steps, loss {log.train_loss[-1]:.4f}"
-                      f"{f', val {log.val_loss[-1]:.4f}' if log.val_loss else ''}, "
+                print(f"  {what}: epoch {done}/{params.epochs}, {total_steps} steps, loss {log.train_loss[-1]:.4g}"
+                      f"{f', val {log.val_loss[-1]:.4g}' if log.val_loss else ''}, "
                       f"about {left * (now - started) / done:.0f}s left at most", file=sys.stderr, flush=True)
             if best_state is not None and stale >= params.patience:
                 break
