@@ -10,6 +10,9 @@ no classifier. ``two_stage_supervised`` keeps the variant whose second stage is 
 
 from __future__ import annotations
 
+import hashlib
+import json
+from collections import OrderedDict
 from typing import Any, ClassVar, Literal
 
 import numpy as np
@@ -87,6 +90,31 @@ class TwoStageSupervisedParams(TwoStageParams):
     )
 
 
+# Fitted members shared between compositions that differ only in how stages combine (a composition and its
+# ablations, run one after the other in the same process): same member, params, seed and training windows
+# give the same fit, so it is done once. Kept small; scores of the same windows are shared the same way.
+_MEMBER_CACHE: OrderedDict[str, tuple[Detector, np.ndarray, float]] = OrderedDict()
+_SCORE_CACHE: OrderedDict[str, np.ndarray] = OrderedDict()
+CACHE_SIZE = 8
+
+
+def windows_digest(windows: WindowSet, labels: np.ndarray | None = None) -> str:
+    """Hash of a window set's counts, sequences and (optional) labels."""
+    h = hashlib.sha256()
+    c = windows.counts.tocsr()
+    for a in (c.data, c.indices, c.indptr, windows.seq_values, windows.seq_offsets,
+              np.asarray([windows.vocab_size]), labels if labels is not None else np.zeros(0)):
+        h.update(np.ascontiguousarray(a).tobytes())
+    return h.hexdigest()
+
+
+def _remember(cache: OrderedDict, key: str, value) -> None:
+    cache[key] = value
+    cache.move_to_end(key)
+    while len(cache) > CACHE_SIZE:
+        cache.popitem(last=False)
+
+
 def ecdf_rank(reference_sorted: np.ndarray, scores: np.ndarray) -> np.ndarray:
     """Mid-rank of each score within a sorted reference sample, in [0, 1]."""
     n = len(reference_sorted)
@@ -151,20 +179,28 @@ class TwoStage(Detector):
         healthy = np.flatnonzero(labels == 0)
         failing = np.flatnonzero(labels == 1)
         ref_ws = windows.subset(used)
-        self.members_ = self._members()
+        data_key = windows_digest(ref_ws, labels[used])
+        self.members_ = []
+        self.member_keys_: list[str | None] = []
         self.refs_: list[np.ndarray] = []
         self.signs_: list[float] = []
-        for s, i, det in self.members_:
-            sign = 1.0
-            if det.trains_on == "labelled":
-                det.fit(ref_ws, labels[used])
-            elif s == 1:
-                det.fit(windows.subset(healthy))
-            else:
-                det.fit(windows.subset(failing))
-                sign = -1.0
+        for s, i, det in self._members():
+            key = json.dumps([data_key, s, det.name, det.params.model_dump(mode="json"), det.seed])
+            if key not in _MEMBER_CACHE:
+                sign = 1.0
+                if det.trains_on == "labelled":
+                    det.fit(ref_ws, labels[used])
+                elif s == 1:
+                    det.fit(windows.subset(healthy))
+                else:
+                    det.fit(windows.subset(failing))
+                    sign = -1.0
+                _remember(_MEMBER_CACHE, key, (det, np.sort(sign * det.score(ref_ws)), sign))
+            det, ref, sign = _MEMBER_CACHE[key]
+            self.member_keys_.append(key)
+            self.members_.append((s, i, det))
             self.signs_.append(sign)
-            self.refs_.append(np.sort(sign * det.score(ref_ws)))
+            self.refs_.append(ref)
         r1, _ = self._stage_ranks(ref_ws)
         self.gate_ = float(np.quantile(r1, self.params.gate_quantile))
 
@@ -172,8 +208,17 @@ class TwoStage(Detector):
         """Mean member rank of stage one and of stage two for each window (0.5 for a stage not fitted)."""
         sums = {1: np.zeros(len(windows)), 2: np.zeros(len(windows))}
         n = {1: 0, 2: 0}
-        for (s, _, det), ref, sign in zip(self.members_, self.refs_, self.signs_):
-            sums[s] += ecdf_rank(ref, sign * det.score(windows))
+        data_key = windows_digest(windows)
+        keys = getattr(self, "member_keys_", [None] * len(self.members_))
+        for (s, _, det), ref, sign, member in zip(self.members_, self.refs_, self.signs_, keys):
+            if member is None:  # a member read back from disk: not shared
+                raw = det.score(windows)
+            else:
+                key = f"{member}:{data_key}"
+                if key not in _SCORE_CACHE:
+                    _remember(_SCORE_CACHE, key, det.score(windows))
+                raw = _SCORE_CACHE[key]
+            sums[s] += ecdf_rank(ref, sign * raw)
             n[s] += 1
         return tuple(sums[s] / n[s] if n[s] else np.full(len(windows), 0.5) for s in (1, 2))
 

@@ -134,6 +134,16 @@ def test_sequence_members_in_both_stages_and_ablations_fit_only_their_stage() ->
         assert {s for s, _, _ in ablation.members_} == {stage}  # the other stage is not fitted at all
         # the same members with the same seeds: the ablation scores are the full composition's stage ranks
         np.testing.assert_allclose(ablation.score(ws), stages[f"stage{stage}"])
+        # ... and its members are the very fits of the full composition (shared within the process)
+        assert ablation.members_[0][2] is next(m for s, _, m in det.members_ if s == stage)
+    # sharing fits changes no number: fitted afresh with the caches emptied, the scores are identical
+    import logtrial.detectors.two_stage as ts
+
+    ts._MEMBER_CACHE.clear()
+    ts._SCORE_CACHE.clear()
+    again = create("two_stage", params, seed=2).fit(ws, labels)
+    assert again.members_[0][2] is not det.members_[0][2]
+    np.testing.assert_array_equal(again.score(ws), det.score(ws))
 
 
 def test_composition_section_says_when_alarms_equal_a_members(tmp_path: Path) -> None:

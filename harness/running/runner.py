@@ -316,7 +316,10 @@ def fit_groups(runs: Iterable[RunConfig]) -> list[list[RunConfig]]:
     """Runs that can share windows and fitted models, grouped; groups are independent units of work."""
     groups: dict[str, list[RunConfig]] = {}
     for r in _ordered(runs):
-        key = json.dumps([r.dataset, r.vocabulary, r.windows, r.task, r.split, r.detector, r.seed], sort_keys=True)
+        # A composition and its ablations (same detector, other `combine`) share fitted members: one group.
+        family = {"name": r.detector["name"],
+                  "params": {k: v for k, v in r.detector["params"].items() if k != "combine"}}
+        key = json.dumps([r.dataset, r.vocabulary, r.windows, r.task, r.split, family, r.seed], sort_keys=True)
         groups.setdefault(key, []).append(r)
     return list(groups.values())
 
