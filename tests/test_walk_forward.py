@@ -102,3 +102,14 @@ def test_retraining_interval_is_the_first_age_below_tolerance() -> None:
     assert retraining_interval(rows, 0.3) is None
     assert retraining_interval(rows[:1], 0.1) is None
     assert np.isnan(rows[2]["recall_predicted"])
+
+
+def test_readme_walk_forward_example_loads(tmp_path: Path) -> None:
+    import re
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    block = next(b for b in re.findall(r"```yaml\n(.*?)```", readme, flags=re.S) if b.startswith("# Walk-forward"))
+    (tmp_path / "exp.yaml").write_text(block)
+    exp = load_experiment(tmp_path / "exp.yaml")
+    assert len(exp.runs) == 2
+    assert exp.runs[0].split["kind"] == "walk_forward" and exp.runs[0].split["age_bin"] == "7 days 00:00:00"
