@@ -46,3 +46,30 @@ def test_default_workers_is_the_usable_core_count() -> None:
 @pytest.mark.parametrize("seconds, text", [(5, "5s"), (65, "1m05s"), (3725, "1h02m")])
 def test_clock_format(seconds: float, text: str) -> None:
     assert engines._clock(seconds) == text
+
+
+def test_mlflow_info_lines_stay_out_of_the_console(tmp_path: Path, home: Path) -> None:
+    # a fresh interpreter, as a user's `logtrial run` is: mlflow configures its own logger when first imported
+    import subprocess
+    import sys
+
+    path = _experiment(tmp_path, detectors=["pca"], seeds=[1], noise=[{"name": "clean", "level": 0.0}])
+    proc = subprocess.run([sys.executable, "-m", "logtrial.cli", "run", str(path), "--workers", "1"],
+                          capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    assert "1 finished" in proc.stdout + proc.stderr
+    assert "INFO" not in proc.stderr and "INFO" not in proc.stdout, proc.stderr
+
+
+def test_two_horizons_sharing_a_training_set_do_not_share_scores(tmp_path: Path, home: Path) -> None:
+    # an unsupervised fit is reused across tasks only when the scored validation and test windows are the same
+    import yaml
+
+    path = _experiment(tmp_path, detectors=["pca"], seeds=[1], noise=[{"name": "clean", "level": 0.0}],
+                       tasks=[{"name": "predict", "horizon": "12h"}, {"name": "predict", "horizon": "3d"}])
+    doc = yaml.safe_load(path.read_text())
+    doc.pop("task")
+    path.write_text(yaml.safe_dump(doc))
+    exp = load_experiment(path)
+    assert run_experiment(exp, home, progress=False, track=False, workers=1) == {"finished": 2, "failed": 0,
+                                                                                   "skipped": 0}

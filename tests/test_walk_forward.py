@@ -4,7 +4,6 @@ from __future__ import annotations
 
 from pathlib import Path
 
-import numpy as np
 import pytest
 import yaml
 from conftest import relay_registry
@@ -93,15 +92,18 @@ def test_every_fold_is_leak_free_and_figures_hold_with_drift_off(tmp_path: Path,
         assert p > 0.01, (name, early, late, p)
 
 
-def test_retraining_interval_is_the_first_age_below_tolerance() -> None:
-    rows = [{"age_days": 0, "failures": 20, "recall_predicted": 0.8},
-            {"age_days": 14, "failures": 20, "recall_predicted": 0.75},
-            {"age_days": 28, "failures": 0, "recall_predicted": float("nan")},
-            {"age_days": 42, "failures": 20, "recall_predicted": 0.6}]
-    assert retraining_interval(rows, 0.1) == 42
-    assert retraining_interval(rows, 0.3) is None
-    assert retraining_interval(rows[:1], 0.1) is None
-    assert np.isnan(rows[2]["recall_predicted"])
+def test_retraining_interval_needs_a_drop_beyond_tolerance_and_noise() -> None:
+    def rows(*pairs):
+        return [{"age_days": 14 * i, "predicted": k, "failures": n} for i, (k, n) in enumerate(pairs)]
+
+    # fresh 80/100; from 28 days on 50/100 and 45/100: a drop of 30 points, far beyond noise
+    assert retraining_interval(rows((80, 100), (78, 100), (50, 100), (45, 100)), 0.1) == 28
+    assert retraining_interval(rows((80, 100), (78, 100), (50, 100), (45, 100)), 0.4) is None  # within tolerance
+    # the same shares on 10 failures per bin are not beyond noise (Fisher's exact test, one-sided)
+    assert retraining_interval(rows((8, 10), (8, 10), (5, 10), (4, 10)), 0.1) is None
+    # bins without failures are skipped; a single bin has nothing to compare
+    assert retraining_interval(rows((80, 100), (0, 0), (40, 100)), 0.1) == 28
+    assert retraining_interval(rows((80, 100)), 0.1) is None
 
 
 def test_readme_walk_forward_example_loads(tmp_path: Path) -> None:

@@ -228,7 +228,9 @@ class Runner:
         reads_labels = det.trains_on == "labelled"
         fit_key = json.dumps(
             [data.table_key, run.vocabulary, run.windows, run.task if reads_labels else None, run.split, run.detector,
-             run.seed, _digest(train), _digest(rep_labels[train]) if reads_labels else None],
+             run.seed, _digest(train), _digest(rep_labels[train]) if reads_labels else None,
+             # the scored windows too: two tasks can share a training set but not their embargoed val/test parts
+             _digest(split.val), _digest(split.test)],
             sort_keys=True,
         )
         if fit_key in self._fits:

@@ -101,6 +101,7 @@ def figures_by_age(meta: pd.DataFrame, scores: np.ndarray, threshold: float, inc
         # alarms raised by windows that end in this age bin
         in_bin = ((meta["end"] > b_lo) & (meta["end"] <= b_hi)).to_numpy()
         row["alerts"] = int((scores[in_bin] >= threshold).sum())
+        row["entities"] = int(meta.loc[in_bin, "entity"].nunique())
         out.append(row)
         k += 1
     return out
@@ -124,29 +125,43 @@ def pooled_by_age(folds: list[dict]) -> dict[str, list[dict]]:
             acc = out.setdefault(policy, [])
             for i, row in enumerate(rows):
                 if i >= len(acc):
-                    acc.append({"age_days": row["age_days"], "failures": 0, "predicted": 0, "alerts": 0, "folds": 0})
+                    acc.append({"age_days": row["age_days"], "failures": 0, "predicted": 0, "alerts": 0, "folds": 0,
+                                "entity_weeks": 0.0})
                 acc[i]["failures"] += row["failures"]
                 acc[i]["predicted"] += row["predicted"]
                 acc[i]["alerts"] += row["alerts"]
                 acc[i]["folds"] += 1
+                acc[i]["entity_weeks"] += row.get("entities", 0) * row.get("days", 0.0) / 7.0
     for rows in out.values():
         for row in rows:
             row["recall_predicted"] = row["predicted"] / row["failures"] if row["failures"] else float("nan")
+            row["alerts_per_week_per_100"] = (100.0 * row["alerts"] / row["entity_weeks"] if row["entity_weeks"]
+                                              else float("nan"))
     return out
 
 
-def retraining_interval(rows: list[dict], tolerance: float) -> float | None:
-    """Model age (days) of the first bin whose recall is more than ``tolerance`` below the first bin's; None if none.
+def retraining_interval(rows: list[dict], tolerance: float, alpha: float = 0.05) -> float | None:
+    """Model age (days) from which failures predicted stay more than ``tolerance`` below a fresh model's; None if never.
 
-    The first bin is the freshly trained model; the comparison uses the pooled counts of the folds.
+    The fresh model is the first age bin. For each later age ``a``, the failures of all bins
+    from ``a`` on are pooled; ``a`` is the retraining interval when their share predicted is
+    more than ``tolerance`` below the fresh share and the drop is beyond noise: Fisher's exact
+    test, one-sided, at level ``alpha`` (scipy.stats.fisher_exact). Rows need ``age_days``,
+    ``failures`` and ``predicted``.
     """
-    valid = [r for r in rows if r["failures"] > 0]
+    from scipy.stats import fisher_exact
+
+    valid = [r for r in sorted(rows, key=lambda r: r["age_days"]) if r["failures"] > 0]
     if len(valid) < 2:
         return None
-    fresh = valid[0]["recall_predicted"]
-    for row in valid[1:]:
-        if row["recall_predicted"] < fresh - tolerance:
-            return float(row["age_days"])
+    k0, n0 = valid[0]["predicted"], valid[0]["failures"]
+    for i in range(1, len(valid)):
+        k = sum(r["predicted"] for r in valid[i:])
+        n = sum(r["failures"] for r in valid[i:])
+        if k / n < k0 / n0 - tolerance:
+            _, p = fisher_exact([[k0, n0 - k0], [k, n - k]], alternative="greater")
+            if p < alpha:
+                return float(valid[i]["age_days"])
     return None
 
 
