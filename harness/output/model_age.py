@@ -96,9 +96,9 @@ def model_age_section(records: list[dict], out: Path) -> list[str]:
              "Each fold retrains, picks its threshold on the validation span after its training span, and is "
              "tested on the span after that. A failure's model age is the time from the start of its fold's test "
              "span to the failure; counts are added up over folds and seeds. Cells: failures predicted / failures "
-             "(share); alert windows per week per 100 nodes. The retraining interval is the first model age from "
-             "which the failures predicted (pooled over that age and older) stay more than the tolerance below the "
-             "fresh model's, with the drop beyond noise (Fisher's exact test, one-sided, 5 %). (In the headline "
+             "(share); alert windows per week per 100 nodes. The retraining interval is the first model age at "
+             "which the failures predicted fall more than the tolerance below the fresh model's (first bin), with "
+             "the drop beyond noise (Fisher's exact test, one-sided, 5 %). (In the headline "
              "table above, a walk-forward run shows its last fold.)",
              ""]
     for policy in table["policy"].drop_duplicates():

@@ -141,13 +141,12 @@ def pooled_by_age(folds: list[dict]) -> dict[str, list[dict]]:
 
 
 def retraining_interval(rows: list[dict], tolerance: float, alpha: float = 0.05) -> float | None:
-    """Model age (days) from which failures predicted stay more than ``tolerance`` below a fresh model's; None if never.
+    """Model age (days) of the first bin whose failures predicted fall more than ``tolerance`` below a fresh model's.
 
-    The fresh model is the first age bin. For each later age ``a``, the failures of all bins
-    from ``a`` on are pooled; ``a`` is the retraining interval when their share predicted is
-    more than ``tolerance`` below the fresh share and the drop is beyond noise: Fisher's exact
-    test, one-sided, at level ``alpha`` (scipy.stats.fisher_exact). Rows need ``age_days``,
-    ``failures`` and ``predicted``.
+    The fresh model is the first age bin. A later bin counts only when its share predicted
+    is more than ``tolerance`` below the fresh share and the drop is beyond noise: Fisher's
+    exact test, one-sided, at level ``alpha`` (scipy.stats.fisher_exact). None when no bin
+    qualifies. Rows need ``age_days``, ``failures`` and ``predicted``.
     """
     from scipy.stats import fisher_exact
 
@@ -155,13 +154,12 @@ def retraining_interval(rows: list[dict], tolerance: float, alpha: float = 0.05)
     if len(valid) < 2:
         return None
     k0, n0 = valid[0]["predicted"], valid[0]["failures"]
-    for i in range(1, len(valid)):
-        k = sum(r["predicted"] for r in valid[i:])
-        n = sum(r["failures"] for r in valid[i:])
+    for row in valid[1:]:
+        k, n = row["predicted"], row["failures"]
         if k / n < k0 / n0 - tolerance:
             _, p = fisher_exact([[k0, n0 - k0], [k, n - k]], alternative="greater")
             if p < alpha:
-                return float(valid[i]["age_days"])
+                return float(row["age_days"])
     return None
 
 
