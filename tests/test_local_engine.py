@@ -37,7 +37,8 @@ def test_progress_prints_a_heartbeat_while_nothing_finishes(monkeypatch, capsys)
     assert lines[3] == "grid: 1/2 runs done, 1m10s elapsed, ETA 1m10s"
 
 
-def test_default_workers_is_the_usable_core_count() -> None:
+def test_default_workers_is_the_usable_core_count(monkeypatch) -> None:
+    monkeypatch.delenv(engines.WORKERS_ENV, raising=False)
     assert engines.default_workers() >= 1
     assert engines.make_engine("local").workers is None
     assert engines.make_engine("local", workers=3).workers == 3
@@ -73,3 +74,13 @@ def test_two_horizons_sharing_a_training_set_do_not_share_scores(tmp_path: Path,
     exp = load_experiment(path)
     assert run_experiment(exp, home, progress=False, track=False, workers=1) == {"finished": 2, "failed": 0,
                                                                                    "skipped": 0}
+
+
+def test_workers_from_the_environment(monkeypatch) -> None:
+    from logtrial.errors import ConfigError
+
+    monkeypatch.setenv(engines.WORKERS_ENV, "3")
+    assert engines.default_workers() == 3
+    monkeypatch.setenv(engines.WORKERS_ENV, "none")
+    with pytest.raises(ConfigError, match="LOGTRIAL_WORKERS: expected a whole number >= 1, got 'none'"):
+        engines.default_workers()

@@ -131,6 +131,12 @@ def model_age_section(records: list[dict], out: Path) -> list[str]:
                 verdicts.append(f"- `{det}` ({noise}, {task}): failures predicted drop by more than "
                                 f"{float(g['tolerance'].iloc[0]):.0%} once the model is {after:g} days old: "
                                 f"retrain at least every {max(after, 1):g} days.")
+        for (det, noise, task), g in sub.groupby(["detector", "noise", "task"], sort=False):
+            rates = g.sort_values("age_days")["alerts_per_week_per_100"].dropna()
+            if len(rates) >= 2 and rates.iloc[0] > 0 and rates.iloc[-1] / rates.iloc[0] >= 1.5:
+                verdicts.append(f"- `{det}` ({noise}, {task}): alerts grow from {rates.iloc[0]:.0f} to "
+                                f"{rates.iloc[-1]:.0f} per week per 100 nodes ({rates.iloc[-1] / rates.iloc[0]:.1f}x) "
+                                f"as the model ages: at this threshold it goes stale through false alarms rather than missed failures.")
         lines += verdicts + ([""] if verdicts else [])
     fig = age_figure(table, "threshold")
     fig.savefig(Path(out) / "model_age.png", dpi=110)

@@ -91,8 +91,16 @@ class LocalEngine:
                               f"{n} processes")
 
 
+WORKERS_ENV = "LOGTRIAL_WORKERS"
+
+
 def default_workers() -> int:
-    """Worker processes of the local engine by default: the cores this process may use."""
+    """Worker processes of the local engine by default: $LOGTRIAL_WORKERS, else the cores this process may use."""
+    raw = os.environ.get(WORKERS_ENV, "").strip()
+    if raw:
+        if not raw.isdigit() or int(raw) < 1:
+            raise ConfigError(f"environment variable {WORKERS_ENV}: expected a whole number >= 1, got {raw!r}")
+        return int(raw)
     try:
         return max(1, len(os.sched_getaffinity(0)))
     except AttributeError:  # not on Linux
