@@ -136,7 +136,8 @@ def model_age_section(records: list[dict], out: Path) -> list[str]:
             if len(rates) >= 2 and rates.iloc[0] > 0 and rates.iloc[-1] / rates.iloc[0] >= 1.5:
                 verdicts.append(f"- `{det}` ({noise}, {task}): alerts grow from {rates.iloc[0]:.0f} to "
                                 f"{rates.iloc[-1]:.0f} per week per 100 nodes ({rates.iloc[-1] / rates.iloc[0]:.1f}x) "
-                                f"as the model ages: at this threshold it goes stale through false alarms rather than missed failures.")
+                                f"as the model ages: at this threshold it goes stale through false alarms rather "
+                                f"than missed failures.")
         lines += verdicts + ([""] if verdicts else [])
     fig = age_figure(table, "threshold")
     fig.savefig(Path(out) / "model_age.png", dpi=110)
