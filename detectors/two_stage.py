@@ -95,7 +95,7 @@ class TwoStageSupervisedParams(TwoStageParams):
 # give the same fit, so it is done once. Kept small; scores of the same windows are shared the same way.
 _MEMBER_CACHE: OrderedDict[str, tuple[Detector, np.ndarray, float]] = OrderedDict()
 _SCORE_CACHE: OrderedDict[str, np.ndarray] = OrderedDict()
-CACHE_SIZE = 8
+CACHE_SIZE = 48
 
 
 def windows_digest(windows: WindowSet, labels: np.ndarray | None = None) -> str:
