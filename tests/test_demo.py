@@ -31,3 +31,9 @@ def test_demo_runs_the_whole_job_on_a_smaller_grid(tmp_path: Path, home: Path, c
     assert "rate_rule" in text and "pca" in text and "2 runs finished, 0 failed" in text
     for name in ("report.md", "report.html", "results.csv", "robustness.png", "lead_times.png", "pr_curves.png"):
         assert (out / name).is_file(), name
+
+
+def test_demo_refuses_a_bad_worker_count(tmp_path: Path, home: Path, capsys) -> None:
+    assert main(["demo", "--workers", "0", "--out", str(tmp_path / "out")]) == 2
+    assert "--workers: expected a whole number >= 1, got 0" in capsys.readouterr().err
+    assert not (tmp_path / "out").exists()
