@@ -71,8 +71,9 @@ def equal_alarms(records: list[dict], store) -> pd.DataFrame:
         return cache[r["run_id"]]
 
     for r in finished:
-        if r["config"]["detector"]["name"] not in COMPOSITES:
-            continue
+        det = r["config"]["detector"]
+        if det["name"] not in COMPOSITES or str((det.get("params") or {}).get("combine", "")).endswith("_only"):
+            continue  # ablations are compared as relatives of their full composition
         mine = alerts(r)
         if mine is None:
             continue
@@ -97,12 +98,18 @@ def composition_section(records: list[dict], store) -> list[str]:
     lines = ["## Compositions beside their members", "",
              "A composition adds nothing measurable where its test alarms are exactly those of one of its members "
              "(run alone in this grid) or of one of its ablations.", ""]
-    for row in table.itertuples(index=False):
-        if row.equal == row.runs:
-            verdict = f"raises exactly the alarms of `{row.relative}` in all {row.runs} runs: it adds nothing measurable"
-        elif row.equal:
-            verdict = f"raises exactly the alarms of `{row.relative}` in {row.equal} of {row.runs} runs"
-        else:
-            verdict = f"differs from `{row.relative}` in all {row.runs} runs"
-        lines.append(f"- `{row.composite}` {verdict}.")
+    for composite, rows in table.groupby("composite", sort=False):
+        differs = []
+        for row in rows.itertuples(index=False):
+            if row.equal == row.runs:
+                lines.append(f"- `{composite}` raises exactly the alarms of `{row.relative}` in all {row.runs} runs: "
+                             f"it adds nothing measurable over it.")
+            elif row.equal:
+                lines.append(f"- `{composite}` raises exactly the alarms of `{row.relative}` in {row.equal} of "
+                             f"{row.runs} runs.")
+            else:
+                differs.append(f"`{row.relative}`")
+        if differs:
+            lines.append(f"- `{composite}` raises alarms of its own: they differ from those of {', '.join(differs)} "
+                         f"in every run compared.")
     return lines + [""]
