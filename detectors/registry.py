@@ -8,12 +8,12 @@ from typing import Any
 from logtrial.detectors.base import Detector, read_saved
 from logtrial.detectors.catalogue import ENTRY_POINT_GROUP, SINGLE, instantiate
 from logtrial.detectors.catalogue import plugins as _plugins
-from logtrial.detectors.two_stage import TwoStage
+from logtrial.detectors.two_stage import TwoStage, TwoStageSupervised
 from logtrial.errors import ConfigError
 
 __all__ = ["ENTRY_POINT_GROUP", "BUILTINS", "plugins", "available", "create", "load"]
 
-COMPOSITES: dict[str, type[Detector]] = {TwoStage.name: TwoStage}
+COMPOSITES: dict[str, type[Detector]] = {TwoStage.name: TwoStage, TwoStageSupervised.name: TwoStageSupervised}
 BUILTINS: dict[str, type[Detector]] = {**SINGLE, **COMPOSITES}
 
 

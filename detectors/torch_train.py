@@ -5,7 +5,16 @@ global generator for initial weights and dropout, a NumPy generator for shufflin
 sampling), so on CPU the same config gives the same numbers. ``threads`` (parameter, else
 the environment variable ``LOGTRIAL_TORCH_THREADS``, else torch's default) is applied with
 ``torch.set_num_threads`` for the duration of a fit or score and restored afterwards.
-A progress bar is shown on an interactive terminal unless ``LOGTRIAL_PROGRESS=0``.
+A progress bar is shown on an interactive terminal unless ``LOGTRIAL_PROGRESS=0``; when
+the output is not a terminal, a plain line per epoch is printed at most every
+``PLAIN_EVERY_S`` seconds (unless ``LOGTRIAL_PROGRESS=0``).
+
+Budget: a fit takes at most ``max_steps`` optimisation steps (default ``STEP_BUDGET``,
+2,000). On one CPU thread a step of the default density autoencoder costs a few
+milliseconds and one of the sequence models some tens of milliseconds (measured with
+``python bench/demo.py``), so a fit stays within a minute or two whatever the data size.
+Training also stops early when the loss on the held-out ``val_share`` of the training
+windows has not improved for ``patience`` epochs; the best weights are kept.
 """
 
 from __future__ import annotations
@@ -13,6 +22,7 @@ from __future__ import annotations
 import copy
 import os
 import sys
+import time
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -25,6 +35,8 @@ from pydantic import Field
 
 THREADS_ENV = "LOGTRIAL_TORCH_THREADS"
 PROGRESS_ENV = "LOGTRIAL_PROGRESS"
+STEP_BUDGET = 2_000
+PLAIN_EVERY_S = 10.0
 
 
 class TorchParams(DetectorParams):
@@ -36,6 +48,7 @@ class TorchParams(DetectorParams):
     weight_decay: float = Field(0.0, ge=0.0, description="Adam L2 penalty")
     patience: int = Field(2, ge=1, description="epochs without validation improvement before stopping")
     min_batches: int = Field(50, ge=1, description="optimisation steps per epoch at least (passes repeated)")
+    max_steps: int | None = Field(STEP_BUDGET, ge=1, description="optimisation steps per fit at most (the budget); None = no bound")
     val_share: float = Field(0.1, ge=0.0, lt=1.0, description="share of training windows held out for early stopping")
     max_train: int | None = Field(20_000, ge=2, description="training windows used (seeded sample); None = all")
     threads: int | None = Field(None, ge=1, description=f"torch threads; None = ${THREADS_ENV} or torch's default")
@@ -84,6 +97,14 @@ def show_progress() -> bool:
     if flag is not None:
         return flag.strip() not in ("0", "false", "no", "")
     return sys.stderr.isatty()
+
+
+def plain_progress() -> bool:
+    """Whether to print plain per-epoch lines: output is not a terminal and LOGTRIAL_PROGRESS is not 0."""
+    flag = os.environ.get(PROGRESS_ENV)
+    if flag is not None and flag.strip() in ("0", "false", "no", ""):
+        return False
+    return not show_progress()
 
 
 # ----- ragged sequences -> dense batches ---------------------------------------------------
@@ -159,11 +180,14 @@ class TrainLog:
     train_loss: list[float] = field(default_factory=list)
     val_loss: list[float] = field(default_factory=list)
     examples: int = 0
+    steps: int = 0
+    budget_hit: bool = False
 
     def as_dict(self) -> dict:
         """Plain form for detector info."""
         return {
             "epochs_run": self.epochs_run, "best_epoch": self.best_epoch, "examples": self.examples,
+            "steps": self.steps, "budget_hit": self.budget_hit,
             "train_loss": [round(v, 6) for v in self.train_loss], "val_loss": [round(v, 6) for v in self.val_loss],
         }
 
@@ -207,6 +231,7 @@ def train(
     ``weight_index`` names the tensor of per-example weights, used to average validation
     losses across batches. An epoch is one shuffled pass over the examples, repeated until it
     holds at least ``min_batches`` steps (small deduplicated sets still get enough updates).
+    Training ends after ``max_steps`` steps in all (the budget), even within an epoch.
     """
     rng = np.random.default_rng(seed)
     opt = torch.optim.Adam(model.parameters(), lr=params.lr, weight_decay=params.weight_decay)
@@ -222,6 +247,10 @@ def train(
         from tqdm import tqdm
 
         bar = tqdm(total=params.epochs, desc=what, unit="epoch", leave=False, file=sys.stderr)
+    plain = plain_progress()
+    started = last_line = time.monotonic()
+    budget = params.max_steps if params.max_steps is not None else float("inf")
+    total_steps = 0
     val_weight = None if (val_data is None or weight_index is None) else val_data[weight_index]
     try:
         for epoch in range(params.epochs):
@@ -230,6 +259,8 @@ def train(
             for _ in range(passes):
                 perm = torch.from_numpy(rng.permutation(n))
                 for sl in batch_slices(n, params.batch_size):
+                    if total_steps >= budget:
+                        break
                     batch = tuple(t[perm[sl]] for t in train_data)
                     loss = loss_fn(model, batch)
                     opt.zero_grad(set_to_none=True)
@@ -237,7 +268,9 @@ def train(
                     opt.step()
                     running += float(loss.detach())
                     steps += 1
-            log.examples += n * passes
+                    total_steps += 1
+                    log.examples += int(sl.stop - sl.start)
+            log.steps = total_steps
             log.epochs_run = epoch + 1
             log.train_loss.append(running / max(steps, 1))
             if val_data is not None and int(val_data[0].shape[0]) > 0:
@@ -253,7 +286,18 @@ def train(
             if bar is not None:
                 bar.update(1)
                 bar.set_postfix(loss=f"{log.train_loss[-1]:.4f}", val=f"{log.val_loss[-1]:.4f}" if log.val_loss else "-")
+            now = time.monotonic()
+            if plain and now - last_line >= PLAIN_EVERY_S:
+                last_line = now
+                done = max(epoch + 1, 1)
+                left = min(params.epochs - done, max(0.0, (budget - total_steps) / max(steps, 1)))
+                print(f"  {what}: epoch {done}/{params.epochs}, {total_steps} steps, loss {log.train_loss[-1]:.4g}"
+                      f"{f', val {log.val_loss[-1]:.4g}' if log.val_loss else ''}, "
+                      f"about {left * (now - started) / done:.0f}s left at most", file=sys.stderr, flush=True)
             if best_state is not None and stale >= params.patience:
+                break
+            if total_steps >= budget:
+                log.budget_hit = True
                 break
     finally:
         if bar is not None:

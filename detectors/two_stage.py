@@ -1,7 +1,18 @@
-"""Two-stage composition: stage one flags anomalous windows, stage two decides which of them look like failures."""
+"""Two-stage composition: stage one flags anomalous windows, stage two decides which of them look like failures.
+
+``two_stage`` is the published form: both stages are autoencoders (``seq_ae`` over event
+sequences and ``density_ae`` over event frequencies); stage one learns the windows reported
+healthy, stage two the same architectures learns the windows reported failing, and there is
+no classifier. ``two_stage_supervised`` keeps the variant whose second stage is a classifier
+(pca + density_ae gated into logistic regression). ``combine: stage1_only`` or
+``stage2_only`` turns either into its ablation (only that stage is fitted).
+"""
 
 from __future__ import annotations
 
+import hashlib
+import json
+from collections import OrderedDict
 from typing import Any, ClassVar, Literal
 
 import numpy as np
@@ -12,6 +23,7 @@ from logtrial.windowing.windows import WindowSet
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 
 STAGES = ("stage1", "stage2")
+COMPOSITE_NAMES = ("two_stage", "two_stage_supervised")
 
 
 class MemberSpec(BaseModel):
@@ -29,34 +41,78 @@ class MemberSpec(BaseModel):
         if not isinstance(raw, dict) or not isinstance(raw.get("name"), str):
             raise ValueError("expected a mapping {name: <detector>, params: {...}}")
         name = raw["name"]
-        if name == TwoStage.name:
-            raise ValueError("a two_stage member cannot itself be two_stage")
-        known = members(reserved=(TwoStage.name,))
+        if name in COMPOSITE_NAMES:
+            raise ValueError(f"a two-stage member cannot itself be a composite ({name})")
+        known = members(reserved=COMPOSITE_NAMES)
         if name not in known:
             raise ValueError(f"unknown detector '{name}'; known: {', '.join(sorted(known))}")
         params = raw.get("params") or {}
         if not isinstance(params, dict):
             raise ValueError(f"params of member '{name}' must be a mapping")
         try:
-            det = create_member(name, params, seed=0, reserved=(TwoStage.name,))
+            det = create_member(name, params, seed=0, reserved=COMPOSITE_NAMES)
         except ConfigError as exc:
             raise ValueError(str(exc)) from None
         return {**raw, "params": det.params.model_dump(mode="json")}
 
 
+def _autoencoders() -> tuple[MemberSpec, ...]:
+    """The published members of either stage: a sequence and a density autoencoder."""
+    return (MemberSpec(name="seq_ae"), MemberSpec(name="density_ae"))
+
+
 class TwoStageParams(DetectorParams):
-    """Members of both stages and how their scores are combined."""
+    """Members of both stages and how their scores are combined (defaults: the published autoencoder form)."""
 
     stage1: tuple[MemberSpec, ...] = Field(
-        default_factory=lambda: (MemberSpec(name="pca"),), min_length=1, description="anomaly detectors trained on healthy windows"
+        default_factory=_autoencoders, min_length=1, description="anomaly detectors trained on healthy windows"
     )
     stage2: tuple[MemberSpec, ...] = Field(
-        default_factory=lambda: (MemberSpec(name="logistic"),), min_length=1, description="failure detectors trained on labelled windows"
+        default_factory=_autoencoders, min_length=1,
+        description="failure detectors: unsupervised ones trained on failing windows, classifiers on labelled ones"
     )
     combine: Literal["gated", "product", "stage2_only", "stage1_only"] = Field(
-        "gated", description="how the stage ranks make the final score (see TwoStage)"
+        "gated", description="how the stage ranks make the final score (see TwoStage); *_only are the ablations"
     )
     gate_quantile: float = Field(0.9, gt=0.0, lt=1.0, description="stage-one rank quantile above which a window is flagged")
+
+
+class TwoStageSupervisedParams(TwoStageParams):
+    """The supervised variant's defaults: pca + density_ae in stage one, logistic regression in stage two."""
+
+    stage1: tuple[MemberSpec, ...] = Field(
+        default_factory=lambda: (MemberSpec(name="pca"), MemberSpec(name="density_ae")), min_length=1,
+        description="anomaly detectors trained on healthy windows"
+    )
+    stage2: tuple[MemberSpec, ...] = Field(
+        default_factory=lambda: (MemberSpec(name="logistic"),), min_length=1,
+        description="failure detectors: classifiers on labelled windows, unsupervised ones on failing windows"
+    )
+
+
+# Fitted members shared between compositions that differ only in how stages combine (a composition and its
+# ablations, run one after the other in the same process): same member, params, seed and training windows
+# give the same fit, so it is done once. Kept small; scores of the same windows are shared the same way.
+_MEMBER_CACHE: OrderedDict[str, tuple[Detector, np.ndarray, float]] = OrderedDict()
+_SCORE_CACHE: OrderedDict[str, np.ndarray] = OrderedDict()
+CACHE_SIZE = 48
+
+
+def windows_digest(windows: WindowSet, labels: np.ndarray | None = None) -> str:
+    """Hash of a window set's counts, sequences and (optional) labels."""
+    h = hashlib.sha256()
+    c = windows.counts.tocsr()
+    for a in (c.data, c.indices, c.indptr, windows.seq_values, windows.seq_offsets,
+              np.asarray([windows.vocab_size]), labels if labels is not None else np.zeros(0)):
+        h.update(np.ascontiguousarray(a).tobytes())
+    return h.hexdigest()
+
+
+def _remember(cache: OrderedDict, key: str, value) -> None:
+    cache[key] = value
+    cache.move_to_end(key)
+    while len(cache) > CACHE_SIZE:
+        cache.popitem(last=False)
 
 
 def ecdf_rank(reference_sorted: np.ndarray, scores: np.ndarray, rel_tol: float = 1e-9) -> np.ndarray:
@@ -87,6 +143,9 @@ class TwoStage(Detector):
       labelled windows; an unsupervised member is fitted on the windows labelled 1
       (failing) and its score is negated, so closeness to failures ranks high.
 
+    Members may read event sequences (``seq_ae``, ``next_event``) or counts: windows carry both.
+    With ``combine: stage1_only`` (or ``stage2_only``) only that stage's members are fitted.
+
     Member ``i`` of stage ``s`` uses seed ``seed + 100 * s + i``. Each member's score is
     turned into a rank in [0, 1] by the mid-rank empirical CDF of its scores on all
     labelled training windows (fixed at fit time, so scoring is independent of the batch),
@@ -101,17 +160,23 @@ class TwoStage(Detector):
     """
 
     name: ClassVar[str] = "two_stage"
-    reads: ClassVar[str] = "counts"
+    reads: ClassVar[str] = "sequences"
     trains_on: ClassVar[str] = "labelled"
     Params: ClassVar[type[TwoStageParams]] = TwoStageParams
     supports_state: ClassVar[bool] = True
 
+    def _stages_used(self) -> tuple[int, ...]:
+        """Stages whose members make the score: both, or one for the ablations."""
+        return {"stage1_only": (1,), "stage2_only": (2,)}.get(self.params.combine, (1, 2))
+
     def _members(self) -> list[tuple[int, int, Detector]]:
         out = []
         for s, stage in enumerate(STAGES, 1):
+            if s not in self._stages_used():
+                continue
             for i, spec in enumerate(getattr(self.params, stage)):
-                out.append((s, i, create_member(spec.name, spec.params, seed=self.seed + 100 * s + i, source="two_stage",
-                                             reserved=(TwoStage.name,))))
+                out.append((s, i, create_member(spec.name, spec.params, seed=self.seed + 100 * s + i, source=self.name,
+                                             reserved=COMPOSITE_NAMES)))
         return out
 
     def _fit(self, windows: WindowSet, labels: np.ndarray | None) -> None:
@@ -121,31 +186,48 @@ class TwoStage(Detector):
         healthy = np.flatnonzero(labels == 0)
         failing = np.flatnonzero(labels == 1)
         ref_ws = windows.subset(used)
-        self.members_ = self._members()
+        data_key = windows_digest(ref_ws, labels[used])
+        self.members_ = []
+        self.member_keys_: list[str | None] = []
         self.refs_: list[np.ndarray] = []
         self.signs_: list[float] = []
-        for s, i, det in self.members_:
-            sign = 1.0
-            if det.trains_on == "labelled":
-                det.fit(ref_ws, labels[used])
-            elif s == 1:
-                det.fit(windows.subset(healthy))
-            else:
-                det.fit(windows.subset(failing))
-                sign = -1.0
+        for s, i, det in self._members():
+            key = json.dumps([data_key, s, det.name, det.params.model_dump(mode="json"), det.seed])
+            if key not in _MEMBER_CACHE:
+                sign = 1.0
+                if det.trains_on == "labelled":
+                    det.fit(ref_ws, labels[used])
+                elif s == 1:
+                    det.fit(windows.subset(healthy))
+                else:
+                    det.fit(windows.subset(failing))
+                    sign = -1.0
+                _remember(_MEMBER_CACHE, key, (det, np.sort(sign * det.score(ref_ws)), sign))
+            det, ref, sign = _MEMBER_CACHE[key]
+            self.member_keys_.append(key)
+            self.members_.append((s, i, det))
             self.signs_.append(sign)
-            self.refs_.append(np.sort(sign * det.score(ref_ws)))
+            self.refs_.append(ref)
         r1, _ = self._stage_ranks(ref_ws)
         self.gate_ = float(np.quantile(r1, self.params.gate_quantile))
 
     def _stage_ranks(self, windows: WindowSet) -> tuple[np.ndarray, np.ndarray]:
-        """Mean member rank of stage one and of stage two for each window."""
+        """Mean member rank of stage one and of stage two for each window (0.5 for a stage not fitted)."""
         sums = {1: np.zeros(len(windows)), 2: np.zeros(len(windows))}
         n = {1: 0, 2: 0}
-        for (s, _, det), ref, sign in zip(self.members_, self.refs_, self.signs_):
-            sums[s] += ecdf_rank(ref, sign * det.score(windows))
+        data_key = windows_digest(windows)
+        keys = getattr(self, "member_keys_", [None] * len(self.members_))
+        for (s, _, det), ref, sign, member in zip(self.members_, self.refs_, self.signs_, keys):
+            if member is None:  # a member read back from disk: not shared
+                raw = det.score(windows)
+            else:
+                key = f"{member}:{data_key}"
+                if key not in _SCORE_CACHE:
+                    _remember(_SCORE_CACHE, key, det.score(windows))
+                raw = _SCORE_CACHE[key]
+            sums[s] += ecdf_rank(ref, sign * raw)
             n[s] += 1
-        return sums[1] / n[1], sums[2] / n[2]
+        return tuple(sums[s] / n[s] if n[s] else np.full(len(windows), 0.5) for s in (1, 2))
 
     def _score(self, windows: WindowSet) -> np.ndarray:
         r1, r2 = self._stage_ranks(windows)
@@ -196,3 +278,16 @@ class TwoStage(Detector):
             self.members_.append((s, i, loaded))
             self.refs_.append(np.asarray(state[key + "ref"], dtype=np.float64))
             self.signs_.append(float(state[key + "sign"]))
+
+
+class TwoStageSupervised(TwoStage):
+    """The supervised two-stage variant: stage one as in ``two_stage``, stage two a classifier on reported labels.
+
+    Same composition rules as ``two_stage``; only the default members differ (stage one
+    ``pca`` + ``density_ae`` on healthy windows, stage two ``logistic`` on all labelled
+    windows), so a report can set it beside the published, classifier-free form.
+    """
+
+    name: ClassVar[str] = "two_stage_supervised"
+    reads: ClassVar[str] = "counts"
+    Params: ClassVar[type[TwoStageParams]] = TwoStageSupervisedParams

@@ -439,11 +439,12 @@ def build_parser() -> argparse.ArgumentParser:
     registry_opt(sp)
     sp.add_argument("--no-track", action="store_true", help="do not record runs in MLflow")
     sp.add_argument("--engine", choices=["local", "dask"], default="local",
-                    help="local: in this process (default); dask: one task per fit group on a Dask cluster")
+                    help="local: fit groups in local processes, one per core (default); dask: one task per fit group on a Dask cluster")
     sp.add_argument("--scheduler", metavar="ADDRESS",
                     help="with --engine dask: address of a running Dask scheduler (data home must be shared)")
     sp.add_argument("--workers", type=int, metavar="N",
-                    help="with --engine dask and no --scheduler: start a local cluster of N worker processes")
+                    help="local: N worker processes (default: one per core; 1 = in this process); "
+                         "dask without --scheduler: start a local cluster of N worker processes")
 
     sp = verb("report", cmd_report, "comparison tables and plots from recorded runs",
               "logtrial report reports/bgl-2k/experiment.yaml")

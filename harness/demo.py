@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import json
 import time
 from pathlib import Path
 
@@ -11,7 +12,7 @@ from logtrial.data.registry import REPO_ROOT
 DEMO_EXPERIMENT = REPO_ROOT / "reports" / "demo" / "experiment.yaml"
 
 
-def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True) -> int:
+def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True, workers: int | None = None) -> int:
     """Simulate the fleet, ingest it, run the demo grid, write the report and print the headline table."""
     from logtrial.data.acquire import log_files
     from logtrial.data.ingest import dataset_folder, ingest_files
@@ -24,8 +25,8 @@ def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True) 
     t0 = time.time()
     home = home_dir()
     exp = load_experiment(experiment, output=out)
-    entry = get_entry("radar-relay", load_registry())
-    print("[1/4] simulating the radar-relay fleet (cached by scenario hash)", flush=True)
+    entry = get_entry(exp.runs[0].dataset, load_registry(exp.registry_files))
+    print(f"[1/4] simulating the {entry.name} fleet (cached by scenario hash)", flush=True)
     folder = dataset_folder(entry, home, progress=True)
     files = log_files(entry, folder)
     print(f"      {files[0]}")
@@ -34,9 +35,11 @@ def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True) 
     score = score_against_truth(res.events, res.templates, folder / entry.truth.file, entry.truth)
     print(f"      {res.manifest['rows']:,} events, {res.manifest['templates']} templates, "
           f"{res.manifest['quarantined']} quarantined, grouping accuracy {score['grouping_accuracy']:.4f}")
+    tasks = len({json.dumps(r.task, sort_keys=True) for r in exp.runs})
+    seeds = len({r.seed for r in exp.runs})
     print(f"[3/4] running {len(exp.runs)} runs: {len(experiment_order(exp)[0])} detectors x "
-          f"{len(experiment_order(exp)[1])} noise levels x seeds", flush=True)
-    counts = run_experiment(exp, home, progress=True, track=track)
+          f"{len(experiment_order(exp)[1])} noise levels x {tasks} horizon(s) x {seeds} seed(s)", flush=True)
+    counts = run_experiment(exp, home, progress=True, track=track, workers=workers)
     print("[4/4] writing the report", flush=True)
     paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs},
                          description=exp.raw.get("description"))
@@ -54,10 +57,16 @@ def add_demo_parser(verb) -> None:
     """Register the `demo` verb on the command line."""
 
     def cmd(args: argparse.Namespace) -> int:
-        return run_demo(Path(args.out), Path(args.experiment), track=not args.no_track)
+        if args.workers is not None and args.workers < 1:
+            from logtrial.errors import ConfigError
+
+            raise ConfigError(f"--workers: expected a whole number >= 1, got {args.workers}")
+        return run_demo(Path(args.out), Path(args.experiment), track=not args.no_track, workers=args.workers)
 
     sp = verb("demo", cmd, "the whole job on the built-in radar-relay scenario, no download", "logtrial demo")
     sp.add_argument("--out", default="logtrial-out/demo", metavar="DIR", help="output folder (default: %(default)s)")
     sp.add_argument("--experiment", default=str(DEMO_EXPERIMENT), metavar="YAML",
                     help="experiment file to run (default: the committed demo grid)")
     sp.add_argument("--no-track", action="store_true", help="do not record runs in MLflow")
+    sp.add_argument("--workers", type=int, metavar="N",
+                    help="worker processes for the grid (default: one per core; 1 = in this process)")

@@ -8,6 +8,10 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
+# Grids in tests run in the test process (one local worker): monkeypatched code and test-only plugins
+# are then the ones that run, and no worker interpreters start per test. Tests of the parallel
+# engine ask for workers explicitly.
+os.environ.setdefault("LOGTRIAL_WORKERS", "1")
 LOGHUB_DEFAULT = ROOT.parent / "shared" / "datasets" / "loghub-2k"
 
 

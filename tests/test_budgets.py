@@ -128,9 +128,9 @@ def test_budget_threshold_equals_direct_policy(grid: Path) -> None:
 
     exp = load(grid / "exp.yaml")
     rec = RunStore(grid / "out").records()[0]
-    from logtrial.running.runner import Runner
-
     import os
+
+    from logtrial.running.runner import Runner
 
     os.environ["LOGTRIAL_HOME"] = str(grid / "home")
     try:

@@ -322,3 +322,34 @@ def test_declarations() -> None:
         assert cls.trains_on == "healthy" and cls.supports_state
     assert NextEventLSTM.reads == SequenceAutoencoder.reads == "sequences"
     assert DensityAutoencoder.reads == "counts"
+
+
+def test_step_budget_bounds_a_fit_and_is_recorded(monkeypatch) -> None:
+    # 200 examples in batches of 20 = 10 steps per pass; 50 epochs would be 500 steps, the budget allows 23
+    params = TorchParams(epochs=50, batch_size=20, lr=0.01, patience=50, min_batches=1, max_steps=23)
+    with torch_session(0, 1):
+        model = torch.nn.Linear(3, 1)
+        log = train(model, _mse, _linear_data(0, 1.0), _linear_data(1, 1.0), params, 0)
+    assert log.steps == 23 and log.budget_hit and log.epochs_run == 3
+    assert log.examples == 23 * 20
+    unbounded = TorchParams(epochs=2, batch_size=20, min_batches=1, max_steps=None)
+    with torch_session(0, 1):
+        log = train(torch.nn.Linear(3, 1), _mse, _linear_data(0, 1.0), None, unbounded, 0)
+    assert log.steps == 20 and not log.budget_hit
+
+
+def test_plain_epoch_lines_when_output_is_not_a_terminal(monkeypatch, capsys) -> None:
+    import logtrial.detectors.torch_train as tt
+
+    monkeypatch.delenv(tt.PROGRESS_ENV, raising=False)
+    monkeypatch.setattr(tt, "show_progress", lambda: False)  # not a terminal: no bar
+    monkeypatch.setattr(tt, "PLAIN_EVERY_S", 0.0)
+    params = TorchParams(epochs=3, batch_size=50, min_batches=1, patience=5)
+    with torch_session(0, 1):
+        train(torch.nn.Linear(3, 1), _mse, _linear_data(0, 1.0), _linear_data(1, 1.0), params, 0, what="probe")
+    lines = [ln for ln in capsys.readouterr().err.splitlines() if "probe: epoch" in ln]
+    assert [ln.split(",")[0].strip() for ln in lines] == ["probe: epoch 1/3", "probe: epoch 2/3", "probe: epoch 3/3"]
+    monkeypatch.setenv(tt.PROGRESS_ENV, "0")
+    with torch_session(0, 1):
+        train(torch.nn.Linear(3, 1), _mse, _linear_data(0, 1.0), None, params, 0, what="probe")
+    assert "probe: epoch" not in capsys.readouterr().err

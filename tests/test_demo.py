@@ -10,10 +10,16 @@ from logtrial.demo import DEMO_EXPERIMENT
 
 
 def test_demo_runs_the_whole_job_on_a_smaller_grid(tmp_path: Path, home: Path, capsys) -> None:
-    # The committed demo grid (15 detectors x 3 noise levels x 2 seeds) takes minutes; the
-    # same pipeline on two of its detectors, one noise level and one seed shows every stage works.
+    # The committed demo grid (18 detectors x 3 noise levels x 2 horizons) takes minutes; the
+    # same pipeline on two of its detectors, one noise level and one horizon, on a smaller fleet
+    # of the same kind, shows every stage works.
     doc = yaml.safe_load(DEMO_EXPERIMENT.read_text())
-    doc.update(detectors=["rate_rule", "pca"], noise=doc["noise"][:1], seeds=doc["seeds"][:1])
+    doc.update(detectors=["rate_rule", "pca"], noise=doc["noise"][:1], seeds=doc["seeds"][:1], tasks=doc["tasks"][:1])
+    fleet = yaml.safe_load((DEMO_EXPERIMENT.parent / doc["registry"][0]).read_text())
+    entry = fleet["datasets"][doc["datasets"][0]]
+    entry["generator"].update(nodes=12, days=60)
+    (tmp_path / "fleet.yaml").write_text(yaml.safe_dump(fleet))
+    doc["registry"] = ["fleet.yaml"]
     exp = tmp_path / "demo.yaml"
     exp.write_text(yaml.safe_dump(doc))
     out = tmp_path / "out"
@@ -28,3 +34,9 @@ def test_demo_runs_the_whole_job_on_a_smaller_grid(tmp_path: Path, home: Path, c
     for name in ("report.md", "report.html", "results.csv", "operating_curves.png", "budget_dots.png",
                  "lead_times.png", "pr_curves.png"):
         assert (out / name).is_file(), name
+
+
+def test_demo_refuses_a_bad_worker_count(tmp_path: Path, home: Path, capsys) -> None:
+    assert main(["demo", "--workers", "0", "--out", str(tmp_path / "out")]) == 2
+    assert "--workers: expected a whole number >= 1, got 0" in capsys.readouterr().err
+    assert not (tmp_path / "out").exists()

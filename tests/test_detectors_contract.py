@@ -18,6 +18,25 @@ from logtrial.errors import ConfigError
 
 NAMES = sorted(available())
 VOCAB = 12
+# Deep detectors at small sizes (few units, few epochs, a small step budget): the contract is about behaviour,
+# not about how well a model learns, and full sizes would take minutes on a shared CPU.
+_TORCH_SMALL = {"epochs": 2, "max_steps": 30, "min_batches": 5, "threads": 1}
+_SMALL = {
+    "seq_ae": {**_TORCH_SMALL, "embedding": 4, "hidden": 8, "latent": 4, "chunk": 16},
+    "density_ae": {**_TORCH_SMALL, "hidden": [8, 4]},
+    "next_event": {**_TORCH_SMALL, "embedding": 4, "hidden": 8, "layers": 1},
+}
+_SMALL_COMPOSITE = {"stage1": [{"name": "seq_ae", "params": _SMALL["seq_ae"]},
+                               {"name": "density_ae", "params": _SMALL["density_ae"]}],
+                    "stage2": [{"name": "seq_ae", "params": _SMALL["seq_ae"]},
+                               {"name": "density_ae", "params": _SMALL["density_ae"]}]}
+_SMALL["two_stage"] = _SMALL_COMPOSITE
+_SMALL["two_stage_supervised"] = {"stage1": [{"name": "pca"}, {"name": "density_ae", "params": _SMALL["density_ae"]}]}
+
+
+def small(name: str) -> dict:
+    """Parameters that keep a detector quick in the contract tests (empty for the cheap ones)."""
+    return dict(_SMALL.get(name, {}))
 
 
 def _data(seed: int = 3, n: int = 240) -> tuple[np.ndarray, np.ndarray]:
@@ -36,7 +55,7 @@ def _data(seed: int = 3, n: int = 240) -> tuple[np.ndarray, np.ndarray]:
 def _fitted(name: str, seed: int = 7) -> tuple[Detector, object, np.ndarray]:
     counts, labels = _data()
     ws = windows_from_counts(counts, labels)
-    det = create(name, {}, seed=seed)
+    det = create(name, small(name), seed=seed)
     assert det.fit(ws, labels if det.trains_on == "labelled" else None) is det
     return det, ws, labels
 
@@ -106,7 +125,7 @@ def test_refuses_wrong_vocabulary(name: str) -> None:
 
 @pytest.mark.parametrize("name", NAMES)
 def test_unfitted_score_is_refused(name: str) -> None:
-    det = create(name, {}, seed=0)
+    det = create(name, small(name), seed=0)
     with pytest.raises(DetectorError, match=rf"detector '{name}': is not fitted"):
         det.score(windows_from_counts(np.ones((3, VOCAB), dtype=np.int64)))
 
@@ -134,21 +153,21 @@ def test_labelled_detectors_ignore_excluded_and_need_both_classes(name: str) -> 
     excluded = labels.copy()
     excluded[::7] = -1
     keep = excluded >= 0
-    a = create(name, {}, seed=1).fit(ws, excluded)
-    b = create(name, {}, seed=1).fit(ws.subset(keep), excluded[keep])
+    a = create(name, small(name), seed=1).fit(ws, excluded)
+    b = create(name, small(name), seed=1).fit(ws.subset(keep), excluded[keep])
     np.testing.assert_allclose(a.score(ws), b.score(ws), rtol=1e-10, atol=1e-12)
     with pytest.raises(DetectorError, match=rf"detector '{name}': .*needs both classes.*\[0\]"):
-        create(name, {}, seed=1).fit(ws, np.where(labels == 1, -1, 0).astype(np.int8))
+        create(name, small(name), seed=1).fit(ws, np.where(labels == 1, -1, 0).astype(np.int8))
     with pytest.raises(DetectorError, match=rf"detector '{name}': .*no labels"):
-        create(name, {}, seed=1).fit(ws, None)
+        create(name, small(name), seed=1).fit(ws, None)
 
 
 @pytest.mark.parametrize("name", [n for n in NAMES if available()[n].trains_on != "labelled"])
 def test_unsupervised_detectors_do_not_read_labels(name: str) -> None:
     counts, labels = _data()
     ws = windows_from_counts(counts, labels)
-    a = create(name, {}, seed=2).fit(ws, None).score(ws)
-    b = create(name, {}, seed=2).fit(ws, 1 - labels).score(ws)
+    a = create(name, small(name), seed=2).fit(ws, None).score(ws)
+    b = create(name, small(name), seed=2).fit(ws, 1 - labels).score(ws)
     np.testing.assert_array_equal(a, b)
 
 
@@ -266,5 +285,5 @@ def test_any_count_matrix_scores_finite(counts: np.ndarray, name: str) -> None:
     # property (common practice): any non-negative integer count matrix, including all-zero rows
     # and constant columns, fits and yields one finite score per window
     ws = windows_from_counts(counts)
-    scores = create(name, {}, seed=0).fit(ws).score(ws)
+    scores = create(name, small(name), seed=0).fit(ws).score(ws)
     assert scores.shape == (counts.shape[0],) and np.isfinite(scores).all()

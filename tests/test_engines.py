@@ -323,7 +323,7 @@ def test_a_random_split_is_drawn_with_each_runs_own_seed(tmp_path: Path, home: P
     "flags, needle",
     [
         (["--scheduler", "tcp://127.0.0.1:8786"], "--scheduler: only with --engine dask"),
-        (["--workers", "2"], "--workers: only with --engine dask"),
+        (["--workers", "0"], "--workers: expected a whole number >= 1"),
         (["--engine", "dask", "--workers", "0"], "--workers: expected a whole number >= 1"),
         (["--engine", "dask", "--workers", "2", "--scheduler", "tcp://127.0.0.1:8786"],
          "give either --scheduler ADDRESS or --workers N"),

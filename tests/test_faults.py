@@ -185,8 +185,8 @@ def test_unwritable_output_is_one_line_exit_1(tmp_path: Path, home: Path, monkey
 
 
 def test_running_mlflow_rows_are_closed_on_resume(tmp_path: Path, home: Path) -> None:
-    from mlflow.entities import ViewType
     from logtrial.running.tracking import Tracker
+    from mlflow.entities import ViewType
 
     exp = load_experiment(_exp(tmp_path, detectors=["pca", "rate_rule"]))
     run_experiment(exp, home, progress=False, track=True)

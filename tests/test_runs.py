@@ -123,7 +123,8 @@ def test_a_failing_run_is_recorded_and_the_rest_continue(tmp_path: Path, home: P
         raise RuntimeError("deliberate failure inside fit")
 
     monkeypatch.setattr(PCADetector, "_fit", boom)
-    counts = run_experiment(exp, home, progress=False, track=False)
+    # in this process (one worker), where the patched fit is the one that runs
+    counts = run_experiment(exp, home, progress=False, track=False, workers=1)
     assert counts["failed"] == 1 and counts["finished"] == 1
     failed = [r for r in RunStore(exp.output).records() if r["status"] == "failed"][0]
     assert "deliberate failure inside fit" in failed["error"] and "Traceback" in failed["traceback"]

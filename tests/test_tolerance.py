@@ -7,8 +7,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 from logtrial.errors import ConfigError
-from logtrial.output.tolerance import (at_budget, noise_sentences, resample_curves, run_rows, tolerance_section,
-                                       tolerance_settings, tolerance_table)
+from logtrial.output.tolerance import (
+    at_budget,
+    noise_sentences,
+    resample_curves,
+    run_rows,
+    tolerance_section,
+    tolerance_settings,
+    tolerance_table,
+)
 
 # logistic (trained on labels) loses share as drop grows; pca (reads no labels) stays at 0.5.
 LOGISTIC = {0.0: 0.80, 0.25: 0.76, 0.5: 0.60, 0.75: 0.30}

@@ -81,8 +81,9 @@ def test_members_are_validated_with_their_field() -> None:
         create("two_stage", {"stage2": [{"name": "pca", "params": {"variance": 2}}]}, seed=0)
     with pytest.raises(ConfigError, match=r"field 'params.combine'"):
         create("two_stage", {"combine": "sum"}, seed=0)
-    with pytest.raises(ConfigError, match=r"cannot itself be two_stage"):
-        create("two_stage", {"stage1": [{"name": "two_stage"}]}, seed=0)
+    for composite in ("two_stage", "two_stage_supervised"):
+        with pytest.raises(ConfigError, match=rf"cannot itself be a composite \({composite}\)"):
+            create("two_stage", {"stage1": [{"name": composite}]}, seed=0)
     # member params are stored in full, so equivalent configs hash alike
     a = create("two_stage", {"stage1": [{"name": "pca"}]}, seed=0).params.model_dump(mode="json")
     b = create("two_stage", {"stage1": [{"name": "pca", "params": {"variance": 0.95}}]}, seed=0).params.model_dump(mode="json")
@@ -92,13 +93,78 @@ def test_members_are_validated_with_their_field() -> None:
 def test_save_and_load_with_a_deep_member(tmp_path: Path) -> None:
     counts, labels = _data(3)
     ws = windows_from_counts(counts)
-    params = {"stage1": [{"name": "density_ae", "params": {"epochs": 3, "threads": 1}}, {"name": "pca"}]}
+    params = {"stage1": [{"name": "density_ae", "params": {"epochs": 3, "threads": 1}}, {"name": "pca"}],
+              "stage2": [{"name": "logistic"}]}
     det = create("two_stage", params, seed=1).fit(ws, labels)
     det.save(tmp_path / "m")
     again = load(tmp_path / "m")
     np.testing.assert_array_equal(again.score(ws), det.score(ws))
     with pytest.raises(Exception, match="does not support save/load"):
-        create("two_stage", {"stage1": [{"name": "hbos"}]}, seed=1).fit(ws, labels).save(tmp_path / "n")
+        create("two_stage", {"stage1": [{"name": "hbos"}], "stage2": [{"name": "logistic"}]},
+               seed=1).fit(ws, labels).save(tmp_path / "n")
+
+
+# small sizes for the deep members, so that the published form fits in seconds
+SMALL_SEQ = {"name": "seq_ae", "params": {"epochs": 2, "embedding": 4, "hidden": 8, "latent": 4, "chunk": 16,
+                                          "max_steps": 40, "threads": 1}}
+SMALL_DENSITY = {"name": "density_ae", "params": {"epochs": 2, "hidden": [8, 4], "max_steps": 40, "threads": 1}}
+
+
+def test_published_form_is_the_default_and_the_supervised_variant_is_separate() -> None:
+    published = create("two_stage", {}, seed=0).params
+    assert [m.name for m in published.stage1] == ["seq_ae", "density_ae"]
+    assert [m.name for m in published.stage2] == ["seq_ae", "density_ae"]
+    supervised = create("two_stage_supervised", {}, seed=0).params
+    assert [m.name for m in supervised.stage1] == ["pca", "density_ae"]
+    assert [m.name for m in supervised.stage2] == ["logistic"]
+
+
+def test_sequence_members_in_both_stages_and_ablations_fit_only_their_stage() -> None:
+    counts, labels = _data(5, n=300)
+    ws = windows_from_counts(counts)
+    params = {"stage1": [SMALL_SEQ, SMALL_DENSITY], "stage2": [SMALL_SEQ, SMALL_DENSITY]}
+    det = create("two_stage", params, seed=2).fit(ws, labels)
+    assert [(s, m.name, m.trains_on) for s, _, m in det.members_] == [
+        (1, "seq_ae", "healthy"), (1, "density_ae", "healthy"), (2, "seq_ae", "healthy"), (2, "density_ae", "healthy")]
+    # stage two learns the failing windows: its members' scores are negated reconstruction errors
+    assert det.signs_ == [1.0, 1.0, -1.0, -1.0]
+    stages = det.stage_scores(ws)
+    for mode, stage in (("stage1_only", 1), ("stage2_only", 2)):
+        ablation = create("two_stage", {**params, "combine": mode}, seed=2).fit(ws, labels)
+        assert {s for s, _, _ in ablation.members_} == {stage}  # the other stage is not fitted at all
+        # the same members with the same seeds: the ablation scores are the full composition's stage ranks
+        np.testing.assert_allclose(ablation.score(ws), stages[f"stage{stage}"])
+        # ... and its members are the very fits of the full composition (shared within the process)
+        assert ablation.members_[0][2] is next(m for s, _, m in det.members_ if s == stage)
+    # sharing fits changes no number: fitted afresh with the caches emptied, the scores are identical
+    import logtrial.detectors.two_stage as ts
+
+    ts._MEMBER_CACHE.clear()
+    ts._SCORE_CACHE.clear()
+    again = create("two_stage", params, seed=2).fit(ws, labels)
+    assert again.members_[0][2] is not det.members_[0][2]
+    np.testing.assert_array_equal(again.score(ws), det.score(ws))
+
+
+def test_composition_section_says_when_alarms_equal_a_members(tmp_path: Path) -> None:
+    from logtrial.output.compositions import composition_section
+    from logtrial.running.store import RunStore
+
+    store = RunStore(tmp_path)
+    base = {"dataset": "d", "windows": {"kind": "time"}, "task": {"name": "predict"}, "noise": {"name": "clean"},
+            "seed": 1}
+    two = {"name": "two_stage_supervised", "params": {"stage1": [{"name": "pca"}], "stage2": [{"name": "logistic"}],
+                                                      "combine": "gated"}}
+    runs = {"a": (two, [0.1, 2.0, 0.3]), "b": ({"name": "logistic", "params": {}}, [0.2, 0.9, 0.1]),
+            "c": ({"name": "pca", "params": {}}, [0.9, 0.9, 0.1])}
+    records = []
+    for rid, (det, scores) in runs.items():
+        rec = {"run_id": rid, "status": "finished", "config": {**base, "detector": det}, "threshold": {"value": 0.5}}
+        store.write_scores(rid, pd.DataFrame({"window": [0, 1, 2], "part": "test", "score": scores, "label": 0}))
+        records.append(rec)
+    text = "\n".join(composition_section(records, store))
+    assert "`two_stage_supervised` raises exactly the alarms of `logistic` in all 1 runs" in text
+    assert "`two_stage_supervised` raises alarms of its own: they differ from those of `pca` in every run" in text
 
 
 # ----- the simulated scenario with decoys --------------------------------------------------------
@@ -167,6 +233,6 @@ def test_two_stage_has_fewer_false_alarms_per_predicted_failure_than_its_stage_o
     member = {"name": stage1, "params": {"threads": 1}} if stage1 == "density_ae" else {"name": stage1}
     for seed in (1, 2):
         alone = _false_alarms_per_predicted(stage1, dict(member.get("params", {})), seed, decoy_fleet)
-        two = _false_alarms_per_predicted("two_stage", {"stage1": [member], "stage2": [{"name": "logistic"}]}, seed,
-                                          decoy_fleet)
+        two = _false_alarms_per_predicted("two_stage_supervised", {"stage1": [member], "stage2": [{"name": "logistic"}]},
+                                          seed, decoy_fleet)
         assert two < alone, (seed, two, alone)

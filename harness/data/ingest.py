@@ -20,10 +20,10 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 from logtrial import __version__
+from logtrial.data.distributed import LEARN_SHARE, dask_map, learn_count
 from logtrial.data.header import ParsedChunk, _strptime, path_group  # noqa: F401  (_strptime: tests)
 from logtrial.data.lines import RANGE_BYTES, byte_ranges
 from logtrial.data.mining import DrainMiner, TemplateMiner, registry_miner
-from logtrial.data.distributed import LEARN_SHARE, dask_map, learn_count
 from logtrial.data.pipeline import RangeJob, RangeResult, default_workers, ordered_map, parse_range
 from logtrial.data.registry import LineFormat, Miner
 from logtrial.errors import ConfigError, DataError

@@ -11,7 +11,6 @@ from itertools import islice
 from typing import Callable, Iterable, Iterator, TypeVar
 
 import numpy as np
-
 from logtrial.data.header import ParsedChunk
 from logtrial.data.header_columns import ColumnParser
 from logtrial.data.lines import ByteRange, decode_range

@@ -302,9 +302,13 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
         md += [f"{len(failed)} run(s) failed:", ""] + [f"- `{r['run_id']}`: {r.get('error', '')}" for r in failed] + [""]
     md += ["## Pictures", "", curves_note, ""]
     md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs] + noise_section.markdown
+    from logtrial.output.sections import extra_sections
+
+    extra_md = extra_sections(records, store, out)
+    md += extra_md
     (out / "report.md").write_text("\n".join(md))
     (out / "report.html").write_text(_html(title, intro + decision_md, note, foot, table, curves_note, pngs, failed,
-                                             noise_section.html))
+                                             noise_section.html + _md_to_html(extra_md)))
     return {"markdown": out / "report.md", "html": out / "report.html", "csv": out / "results.csv",
             "table": table, "failed": len(failed), "decision": decision_text(boards, finished),
             "boards": boards, "pictures": list(pngs)}

@@ -1,8 +1,11 @@
 """Engines: where an experiment's fit groups run. One small interface, two engines.
 
 An engine turns fit groups into ``(record, scores)`` pairs, one per run config, as they
-finish: ``LocalEngine`` runs them in this process in order; ``DaskEngine`` sends them to a
-Dask cluster, each worker reading data from a shared home. Both give the same figures.
+finish: ``LocalEngine`` runs them in local worker processes, one per core by default (with
+one worker, in this process in order); ``DaskEngine`` sends them to a Dask cluster, each
+worker reading data from a shared home. All give the same figures: a fit group depends only
+on its own configs, and every worker process uses one numeric thread (torch, BLAS, OpenMP),
+so processes do not fight over the cores.
 
 A unit of work is one fit group (runs that share windows and fitted models). Its task payload is
 small and JSON-able: where the experiment comes from (file path or raw mapping), the run ids of the
@@ -35,6 +38,7 @@ import shutil
 import sys
 import tempfile
 import threading
+import time
 import uuid
 from collections import OrderedDict
 from pathlib import Path
@@ -68,15 +72,133 @@ class Engine(Protocol):
 
 
 class LocalEngine:
-    """Every fit group in this process, one after the other, sharing one Runner."""
+    """Fit groups in ``workers`` local processes (default: one per core); with one worker, in this process."""
 
     name = "local"
 
+    def __init__(self, workers: int | None = None) -> None:
+        self.workers = workers
+
     def results(self, experiment: Experiment, groups: list[list[RunConfig]], home: str | Path, *,
                 mirror: Path | None = None, progress: bool = True) -> Results:
-        """(record, scores) per run config, in group order."""
-        runner = Runner(experiment, home, progress=progress, mirror=mirror)
-        return ((rec, scores) for group in groups for rec, scores in runner.execute_group(group))
+        """(record, scores) per run config, in group order with one worker, else as groups finish."""
+        n = min(self.workers or default_workers(), max(len(groups), 1))
+        total = sum(len(g) for g in groups)
+        if n <= 1:
+            return _with_progress(_sequential(experiment, groups, home, mirror, progress), total, progress,
+                                  "1 process")
+        return _with_progress(_parallel(experiment, groups, home, mirror, progress, n), total, progress,
+                              f"{n} processes")
+
+
+WORKERS_ENV = "LOGTRIAL_WORKERS"
+
+
+def default_workers() -> int:
+    """Worker processes of the local engine by default: $LOGTRIAL_WORKERS, else the cores this process may use."""
+    raw = os.environ.get(WORKERS_ENV, "").strip()
+    if raw:
+        if not raw.isdigit() or int(raw) < 1:
+            raise ConfigError(f"environment variable {WORKERS_ENV}: expected a whole number >= 1, got {raw!r}")
+        return int(raw)
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def pin_threads(n: int = 1) -> None:
+    """Limit numeric libraries in this process to ``n`` threads (torch, BLAS and OpenMP pools)."""
+    for var in ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "LOGTRIAL_TORCH_THREADS"):
+        os.environ[var] = str(n)
+    try:
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(n)
+    except ImportError:
+        pass
+    import torch
+
+    torch.set_num_threads(n)
+
+
+def _sequential(experiment: Experiment, groups: list[list[RunConfig]], home: str | Path,
+                mirror: Path | None, progress: bool) -> Results:
+    """Every group in this process, one after the other, sharing one Runner."""
+    pin_threads(1)
+    runner = Runner(experiment, home, progress=progress, mirror=mirror)
+    for group in groups:
+        yield from runner.execute_group(group)
+
+
+def _local_worker_start() -> None:
+    """Initialiser of a local worker process: one numeric thread, no console logging from libraries."""
+    pin_threads(1)
+    logging.getLogger("mlflow").setLevel(logging.WARNING)
+    logging.getLogger("alembic").setLevel(logging.WARNING)
+
+
+def _parallel(experiment: Experiment, groups: list[list[RunConfig]], home: str | Path, mirror: Path | None,
+              progress: bool, n: int) -> Results:
+    """Groups as tasks of a pool of ``n`` fresh worker processes; (record, scores) as groups finish."""
+    import multiprocessing as mp
+    from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+
+    ingest_once(experiment, groups, home, mirror, progress)
+    # Fresh interpreters (spawn): no torch or BLAS thread pools inherited half-initialised from this one.
+    with ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context("spawn"),
+                             initializer=_local_worker_start) as pool:
+        pending = {pool.submit(run_group, group_payload(experiment, g, home, mirror)): g for g in groups}
+        while pending:
+            done, _ = wait(pending, timeout=HEARTBEAT_S, return_when=FIRST_COMPLETED)
+            if not done:
+                yield None  # a heartbeat: nothing finished yet
+                continue
+            for fut in done:
+                group = pending.pop(fut)
+                try:
+                    pairs = fut.result()
+                except Exception as exc:  # noqa: BLE001 - a lost worker fails its runs; the grid goes on
+                    pairs = _failed_records(experiment, group, exc, "local worker failed")
+                yield from pairs
+
+
+HEARTBEAT_S = 30.0
+
+
+def _clock(seconds: float) -> str:
+    """Seconds as 1h02m, 3m05s or 12s."""
+    s = int(round(seconds))
+    if s >= 3600:
+        return f"{s // 3600}h{s % 3600 // 60:02d}m"
+    if s >= 60:
+        return f"{s // 60}m{s % 60:02d}s"
+    return f"{s}s"
+
+
+def _with_progress(items, total: int, progress: bool, where: str) -> Results:
+    """Pass (record, scores) pairs through, printing grid progress with an ETA; ``None`` items are heartbeats.
+
+    A line goes out when a run finishes, and at least every ``HEARTBEAT_S`` seconds while none
+    does (the parallel engine sends heartbeats), so logs that are not a terminal keep moving.
+    """
+    t0 = time.monotonic()
+    done = 0
+    last = t0
+    _say(progress, f"grid: {total} runs in {where}")
+    for item in items:
+        now = time.monotonic()
+        if item is None:
+            if now - last >= HEARTBEAT_S - 0.5:
+                eta = f", ETA {_clock((now - t0) / done * (total - done))}" if done else ""
+                _say(progress, f"grid: {done}/{total} runs done, {_clock(now - t0)} elapsed{eta} (working)")
+                last = now
+            continue
+        done += 1
+        last = now
+        eta = _clock((now - t0) / done * (total - done))
+        _say(progress, f"grid: {done}/{total} runs done, {_clock(now - t0)} elapsed, ETA {eta}")
+        yield item
 
 
 class DaskEngine:
@@ -96,9 +218,9 @@ class DaskEngine:
 
 
 def make_engine(engine: str, scheduler: str | None = None, workers: int | None = None) -> Engine:
-    """The engine named ``local`` or ``dask`` (cluster options apply to dask only)."""
+    """The engine named ``local`` (``workers`` processes, default one per core) or ``dask``."""
     if engine == "local":
-        return LocalEngine()
+        return LocalEngine(workers=workers)
     if engine == "dask":
         return DaskEngine(scheduler=scheduler, workers=workers)
     raise ConfigError(f"engine: must be local or dask, got {engine!r}")
@@ -226,9 +348,10 @@ def run_group(payload: dict) -> list[tuple[dict, pd.DataFrame | None]]:
     return runner.execute_group([by_id[rid] for rid in payload["runs"]])
 
 
-def _failed_records(experiment: Experiment, group: list[RunConfig], exc: BaseException) -> list[tuple[dict, None]]:
+def _failed_records(experiment: Experiment, group: list[RunConfig], exc: BaseException,
+                    what: str = "dask task failed") -> list[tuple[dict, None]]:
     """`failed` records for every run of a unit of work that did not come back (rerun to retry them)."""
-    error = f"dask task failed: {describe_failure(exc)}"
+    error = f"{what}: {describe_failure(exc)}"
     return [({"run_id": r.run_id, "status": "failed", "config": r.canonical(), "experiment": experiment.name,
               "error": error, "traceback": ""}, None) for r in group]
 
@@ -238,9 +361,8 @@ def check_engine_options(engine: str, scheduler: str | None, workers: int | None
     """Reject engine options that do not fit together (named as on the command line)."""
     if engine not in ("local", "dask"):
         raise ConfigError(f"--engine: must be local or dask, got {engine!r}")
-    if engine != "dask" and (scheduler is not None or workers is not None):
-        flag = "--scheduler" if scheduler is not None else "--workers"
-        raise ConfigError(f"{flag}: only with --engine dask")
+    if engine != "dask" and scheduler is not None:
+        raise ConfigError("--scheduler: only with --engine dask")
     if scheduler is not None and workers is not None:
         raise ConfigError("--workers: starts a local cluster, so give either --scheduler ADDRESS or --workers N")
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):

@@ -17,7 +17,7 @@ from logtrial.windowing.durations import format_duration
 
 TOP_LEVEL = {
     "experiment", "description", "output", "datasets", "windows", "tasks", "task", "split", "noise", "detectors",
-    "seeds", "threshold", "scoring", "registry", "gate", "vocabulary", "vocabularies", "budgets", "tolerance",
+    "seeds", "threshold", "scoring", "registry", "gate", "vocabulary", "vocabularies", "budgets", "tolerance", "evaluation",
 }
 SCORING_DEFAULTS = {"cooldown": "1h", "bootstrap": 1000, "ci_level": 0.95, "bootstrap_unit": "entity"}
 
@@ -436,7 +436,14 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
             if "horizon" in t and "size" in w and pd.Timedelta(t["horizon"]) < pd.Timedelta(w["size"]):
                 raise ConfigError(f"task.horizon must be at least the window size ({format_duration(w['size'])}), "
                                   f"got {format_duration(t['horizon'])}")
-    split = _canonical_split(doc.get("split"), "split")
+    if doc.get("evaluation") is not None:  # walk-forward folds take the place of the single split
+        from logtrial.running.walk_forward import canonical_walk_forward
+
+        if doc.get("split") is not None:
+            raise ConfigError("give `split` or `evaluation: {kind: walk_forward, ...}`, not both")
+        split = canonical_walk_forward(doc["evaluation"], "evaluation")
+    else:
+        split = _canonical_split(doc.get("split"), "split")
     noises = _noise_settings(_as_list(doc.get("noise") or [None]), base)
     names = [n["name"] for n in noises]
     if len(set(names)) != len(names):

@@ -11,7 +11,7 @@ import hashlib
 import json
 import time
 import traceback
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Iterable
 
@@ -26,11 +26,12 @@ from logtrial.errors import DataError
 from logtrial.evaluation.curves import CURVE_NOTE, operating_curve
 from logtrial.evaluation.run_figures import evaluate_run, window_metrics_safe
 from logtrial.evaluation.thresholds import ThresholdChoice, budget_key, budget_policy, choose_threshold, load_policy
-from logtrial.labels.noise import load_noise, replay
 from logtrial.labels.incidents import incidents_from_sessions
+from logtrial.labels.noise import load_noise, replay
 from logtrial.labels.truth import truth_incidents
 from logtrial.running.experiment import Experiment, RunConfig, describe_failure
 from logtrial.running.threads import pinned_threads
+from logtrial.running.walk_forward import combine_folds, figures_by_age, fold_splits, is_walk_forward, policies
 from logtrial.windowing.sessions import load_entry_sessions, session_events
 from logtrial.windowing.splits import check_no_leakage, chronological_split, random_split
 from logtrial.windowing.vocabulary import fit_vocabulary, remap_windows
@@ -117,6 +118,11 @@ class Runner:
         # A random split draws with the run's seed, so it is shared only between runs with that seed.
         seed = run.seed if run.split["kind"] == "random" else None
         key = json.dumps([run.dataset, run.windows, run.task, run.split, seed, run.vocabulary], sort_keys=True)
+        if key not in self._prepared and is_walk_forward(run.split):
+            # one fold of a walk-forward evaluation: the shared windows, this fold's split
+            base = self.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]}))
+            fold = fold_splits(base.windows, run.split, base.horizon)[run.split["fold"]]
+            self._prepared[key] = Prepared(base.windows, fold, base.truth_labels, base.horizon)
         if key not in self._prepared:
             data = self.dataset(run.dataset)
             ws = build_windows(data.events, data.vocab_size, run.windows)
@@ -140,12 +146,15 @@ class Runner:
     # ----- one run, step by step -----------------------------------------------------------
     def execute(self, run: RunConfig) -> dict:
         """Run one config end to end, its numeric libraries pinned to one thread, and return its record."""
+        if is_walk_forward(run.split) and "fold" not in run.split:
+            return self.execute_folds(run)  # each fold is executed (and pinned) on its own
         with pinned_threads() as threads:
             record = self._execute(run)
         record["threads"] = threads
         return record
 
     def _execute(self, run: RunConfig) -> dict:
+        """The steps of one run: data, windows, reported labels, fit, thresholds, evaluation, record."""
         t0 = time.time()
         data = self.dataset(run.dataset)
         prep = self.prepared(run)
@@ -164,7 +173,7 @@ class Runner:
         curve = self.curve(run, data, prep, fit.test_scores)
         self._last_scores[run.run_id] = pd.concat([score_table(prep, fit, val_labels), curve_rows(curve)],
                                                   ignore_index=True)
-        return {
+        record = {
             "run_id": run.run_id,
             "status": "finished",
             "config": run.canonical(),
@@ -188,6 +197,35 @@ class Runner:
                        "total_s": round(time.time() - t0, 3), "reused_fit": fit.reused},
             "result_version": RESULT_VERSION,
         }
+        if is_walk_forward(run.split):
+            record["walk_forward_fold"] = self.by_age(run, data, prep, fit.test_scores, record)
+        return record
+
+    def execute_folds(self, run: RunConfig) -> dict:
+        """A walk-forward run: every fold as its own run (own fit, threshold, test span), combined into one record."""
+        prep = self.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]}))
+        n = len(fold_splits(prep.windows, run.split, prep.horizon))
+        folds = [replace(run, split={**run.split, "fold": i}) for i in range(n)]
+        records = [self.execute(f) for f in folds]
+        scores = [self._last_scores.pop(f.run_id) for f in folds]
+        self._last_scores[run.run_id] = scores[-1]
+        out = combine_folds(records, run.split)
+        out.update(run_id=run.run_id, config=run.canonical())
+        return out
+
+    def by_age(self, run: RunConfig, data: DatasetData, prep: Prepared, test_scores: np.ndarray, record: dict) -> dict:
+        """One fold's test figures per model-age bin, at the chosen threshold and at each alarm budget."""
+        meta, split = prep.windows.meta, prep.split
+        lo, hi = split.ranges["test"]
+        count_from = lo + prep.horizon if prep.horizon is not None and lo + prep.horizon < hi else lo
+        test_meta = meta.iloc[split.test].reset_index(drop=True)
+        return {
+            "ranges": {k: [str(a), str(b)] for k, (a, b) in split.ranges.items()},
+            "by_age": {name: figures_by_age(test_meta, test_scores, value, data.truth, prep.horizon,
+                                            pd.Timedelta(run.scoring["cooldown"]), (lo, hi), count_from,
+                                            pd.Timedelta(run.split["age_bin"]))
+                       for name, value in policies(record).items()},
+        }
 
     def reported_labels(self, run: RunConfig, data: DatasetData, prep: Prepared) -> tuple[pd.DataFrame, np.ndarray]:
         """The incidents as the run's noise would have reported them, and the window labels they give."""
@@ -204,7 +242,9 @@ class Runner:
         reads_labels = det.trains_on == "labelled"
         fit_key = json.dumps(
             [data.table_key, run.vocabulary, run.windows, run.task if reads_labels else None, run.split, run.detector,
-             run.seed, _digest(train), _digest(rep_labels[train]) if reads_labels else None],
+             run.seed, _digest(train), _digest(rep_labels[train]) if reads_labels else None,
+             # the scored windows too: two tasks can share a training set but not their embargoed val/test parts
+             _digest(split.val), _digest(split.test)],
             sort_keys=True,
         )
         if fit_key in self._fits:
@@ -337,7 +377,10 @@ def fit_groups(runs: Iterable[RunConfig]) -> list[list[RunConfig]]:
     """Runs that can share windows and fitted models, grouped; groups are independent units of work."""
     groups: dict[str, list[RunConfig]] = {}
     for r in _ordered(runs):
-        key = json.dumps([r.dataset, r.vocabulary, r.windows, r.task, r.split, r.detector, r.seed], sort_keys=True)
+        # A composition and its ablations (same detector, other `combine`) share fitted members: one group.
+        family = {"name": r.detector["name"],
+                  "params": {k: v for k, v in r.detector["params"].items() if k != "combine"}}
+        key = json.dumps([r.dataset, r.vocabulary, r.windows, r.task, r.split, family, r.seed], sort_keys=True)
         groups.setdefault(key, []).append(r)
     return list(groups.values())
 

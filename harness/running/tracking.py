@@ -36,6 +36,8 @@ class Tracker:
         import mlflow
         from mlflow.tracking import MlflowClient
 
+        # mlflow sets its own logger to INFO when first imported: quiet it again after the import
+        logging.getLogger("mlflow").setLevel(logging.ERROR)
         Path(output).mkdir(parents=True, exist_ok=True)
         self.uri = tracking_uri(output)
         self.artifacts = (Path(output) / "mlruns").resolve().as_uri()

@@ -10,7 +10,7 @@ from pathlib import Path
 from logtrial.errors import ConfigError
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
-GENERATOR_VERSION = "1"
+GENERATOR_VERSION = "2"
 FAILURE_MODES = ("disk_wear", "uplink_degradation", "memory_leak", "cooling_fault")
 MS_HOUR = 3_600_000
 MS_MIN = 60_000
@@ -63,6 +63,21 @@ class Anomalies(_Strict):
     network_blips_per_node_year: float = Field(12.0, ge=0)
 
 
+class Drift(_Strict):
+    """Slow drift over the months: firmware roll-outs reword routine messages and the background mix shifts.
+
+    Off by default. When on, the k-th firmware roll-out brings the k-th reworded form of a
+    routine message (``VARIANTS`` in scenario.py, in order, while they last): a node writes
+    the new form for a share ``variant_share`` of those lines from the moment it boots the
+    new firmware. The weights of the background messages move linearly from their start
+    values towards a reshuffled set, reaching ``mix_shift`` of the way at the scenario end.
+    """
+
+    enabled: bool = False
+    variant_share: float = Field(0.9, ge=0, le=1)
+    mix_shift: float = Field(0.8, ge=0, le=1)
+
+
 class Scenario(_Strict):
     """A simulated fleet: size, duration, traffic, failures and anomalies (all seeded)."""
 
@@ -75,6 +90,7 @@ class Scenario(_Strict):
     daily_cycle: float = Field(0.5, ge=0, le=1)
     failures: Failures = Field(default_factory=Failures)
     anomalies: Anomalies = Field(default_factory=Anomalies)
+    drift: Drift = Field(default_factory=Drift)
 
     @field_validator("start")
     @classmethod

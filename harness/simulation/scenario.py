@@ -124,7 +124,18 @@ _CATALOGUE: list[tuple[str, str, str, str, str]] = [
     ("route_change", "uplinkd", "decoy", "network_blip", "route to centre changed via gateway {ip}"),
     ("eth_down", "kernel", "event", "network_blip", "eth1: link down"),
     ("eth_up", "kernel", "event", "network_blip", "eth1: link up, negotiated 1000Mbps"),
+    # reworded routine messages brought by firmware roll-outs when drift is on (see VARIANTS);
+    # each has more words than the form it replaces, so a template miner keeps them apart
+    ("sweep_fwd_v2", "uplinkd", "variant", "", "forwarded sweep sw-{bp:10:0} to centre {ip}:7443 over tls in {i:20:400}ms queue={i:0:12}"),
+    ("keepalive_v2", "uplinkd", "variant", "", "keepalive to centre {ip}:7443 rtt={i:8:60}ms jitter={i:0:9}ms"),
+    ("sweep_pack_v2", "packd", "variant", "", "compressed sweep sw-{bp:10:0} with dictionary d{i:1:9} ratio={d:2:7} out={i:150:1600}KB took {i:40:900}ms"),
+    ("clock_adjust_v2", "timesync", "variant", "", "clock offset {i:0:40}ms corrected against server {ip} using ptp domain {i:0:3}"),
+    ("sweep_rx_v2", "sweepd", "variant", "", "received sweep sw-{bp:10:0} from radar rdr-{p:2:1:24} elev={d:0.5:19.5}deg bins={i:480:1440} size={i:900:4800}KB codec=zstd"),
+    ("fan_status_v2", "fanctl", "variant", "", "fan{i:1:2} speed {i:2200:3400}rpm target {i:2400:3200}rpm duty={i:20:90}%"),
 ]
+# (routine template, its reworded form): the k-th firmware roll-out with drift on brings the k-th pair
+VARIANTS = (("sweep_fwd", "sweep_fwd_v2"), ("keepalive", "keepalive_v2"), ("sweep_pack", "sweep_pack_v2"),
+            ("clock_adjust", "clock_adjust_v2"), ("sweep_rx", "sweep_rx_v2"), ("fan_status", "fan_status_v2"))
 
 MISC_WEIGHTS = {
     "clock_adjust": 3.0, "logrotate": 1.0, "cache_prune": 1.0, "late_sweep": 2.0, "dup_sweep": 1.0,
@@ -298,6 +309,7 @@ class Plan:
     node_rate: np.ndarray  # per-node traffic multiplier
     node_phase: np.ndarray  # per-node health-check phase in ms
     node_base: np.ndarray  # (nodes, 3): base memory %, disk %, temperature tenths
+    variant_switch: np.ndarray  # (len(VARIANTS), nodes): when each node starts writing each reworded form (int64 max = never)
 
 
 class _Lines:
@@ -407,7 +419,9 @@ def plan_fleet(sc: Scenario) -> Plan:
 
     # firmware roll-outs first: boots after them need the running version
     minor, patch = 2, 0
-    for t_r in _poisson_times(rng, sc.anomalies.firmware_rollouts_per_year / (365.25 * MS_DAY), t0, t1):
+    variant_switch = np.full((len(VARIANTS), n_nodes), np.iinfo(np.int64).max, dtype=np.int64)
+    rollouts = _poisson_times(rng, sc.anomalies.firmware_rollouts_per_year / (365.25 * MS_DAY), t0, t1)
+    for rollout, t_r in enumerate(rollouts):
         if rng.random() < 0.4:
             minor, patch = minor + 1, 0
         else:
@@ -431,6 +445,8 @@ def plan_fleet(sc: Scenario) -> Plan:
                 lines.add([t, t_ver, t_app], node, [TID["fw_download"], TID["fw_verify"], TID["fw_apply"]], k,
                           np.repeat(p, 3, axis=0))
                 t_boot = t_app + int(rng.uniform(60, 300) * 1000)
+                if sc.drift.enabled and rollout < len(VARIANTS):
+                    variant_switch[rollout, node] = t_boot
                 silence.append((node, t_app + 1, t_boot, k))
                 fw.changes[node].append((t_boot, new))
                 last = _boot(lines, restarts, fw, node, t_boot, k)
@@ -571,5 +587,5 @@ def plan_fleet(sc: Scenario) -> Plan:
         start_ms=t0, end_ms=t1, incidents=final,
         lines_t=lt[order], lines_node=ln[order], lines_tpl=ltpl[order], lines_params=lp[order], lines_inc=linc[order],
         silence=sil, uplink_down=arr(uplink_down, 3), pack_down=arr(pack_down, 3), restarts=arr(restarts, 3),
-        trends=trends, node_rate=node_rate, node_phase=node_phase, node_base=node_base,
+        trends=trends, node_rate=node_rate, node_phase=node_phase, node_base=node_base, variant_switch=variant_switch,
     )

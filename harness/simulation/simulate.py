@@ -47,6 +47,7 @@ from logtrial.simulation.scenario import (
     TEMPLATE_DAEMON,
     TEMPLATES,
     TID,
+    VARIANTS,
     Plan,
     plan_fleet,
     render_messages,
@@ -134,6 +135,10 @@ class _DayMaker:
         self.misc_ids = np.array([TID[k] for k in MISC_WEIGHTS])
         w = np.array(list(MISC_WEIGHTS.values()))
         self.misc_p = w / w.sum()
+        # drift: background weights move towards a seeded reshuffle of themselves
+        drng = np.random.default_rng(np.random.SeedSequence(sc.seed, spawn_key=(4,)))
+        self.misc_p_late = drng.permutation(self.misc_p)
+        self.variant_pairs = np.array([[TID[a], TID[b]] for a, b in VARIANTS], dtype=np.int64)
         # pid of (node, daemon) after e epochs: base + e * step (mod range)
         prng = np.random.default_rng(np.random.SeedSequence(sc.seed, spawn_key=(3,)))
         nd = len(DAEMONS)
@@ -185,7 +190,7 @@ class _DayMaker:
 
         # benign background messages
         m_node, m_t = _thinned(rng, rate * (1.0 - _ROUTINE_SHARE_SWEEP), amp, d0, d1)
-        m_tpl = rng.choice(self.misc_ids, len(m_t), p=self.misc_p)
+        m_tpl = rng.choice(self.misc_ids, len(m_t), p=self.misc_weights(d0, d1))
         m_par = np.zeros((len(m_t), N_PARAMS), dtype=np.int64)
 
         h_node, h_t, h_par = self._health(rng, d0, d1)
@@ -208,8 +213,28 @@ class _DayMaker:
             keep &= ~(pipeline & _in_intervals(node, t, stopped))
         for r in _overlapping(plan.silence, d0, d1):
             keep &= ~((node == r[0]) & (t >= r[1]) & (t < r[2]) & (inc != r[3]))
+        if sc.drift.enabled:
+            self._reword(np.random.default_rng(np.random.SeedSequence(sc.seed, spawn_key=(5, day))), t, node, tpl)
         order = np.argsort(t[keep], kind="stable")
         return t[keep][order], node[keep][order], tpl[keep][order], par[keep][order], inc[keep][order]
+
+    def misc_weights(self, d0: int, d1: int) -> np.ndarray:
+        """Background message probabilities of a day: fixed, or drifting linearly over the scenario."""
+        if not self.sc.drift.enabled:
+            return self.misc_p
+        plan = self.plan
+        f = self.sc.drift.mix_shift * ((d0 + d1) / 2 - plan.start_ms) / max(plan.end_ms - plan.start_ms, 1)
+        p = (1.0 - f) * self.misc_p + f * self.misc_p_late
+        return p / p.sum()
+
+    def _reword(self, rng: np.random.Generator, t: np.ndarray, node: np.ndarray, tpl: np.ndarray) -> None:
+        """Replace routine lines by their reworded forms on nodes that run the firmware bringing them (in place)."""
+        share = self.sc.drift.variant_share
+        u = rng.random(len(t))
+        for j, (base, variant) in enumerate(self.variant_pairs):
+            switch = self.plan.variant_switch[j]
+            hit = (tpl == base) & (t >= switch[node]) & (u < share)
+            tpl[hit] = variant
 
     def _health(self, rng: np.random.Generator, d0: int, d1: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Health checks of every node on [d0, d1): times on the node's period grid plus readings."""
