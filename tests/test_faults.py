@@ -62,6 +62,24 @@ def test_duplicate_experiment_keys_are_refused(tmp_path: Path, capsys) -> None:
     assert code == 2 and "exp.yaml: line 6" in err and "duplicate key 'detectors'" in err
 
 
+def test_yaml_merge_keys_still_work_and_may_be_overridden(tmp_path: Path) -> None:
+    # reference: the YAML merge key type (yaml.org/type/merge.html) as PyYAML's SafeLoader reads it.
+    import yaml
+
+    from logtrial.data.registry import read_yaml
+
+    text = ("base: &b {stage: one, size: 2}\n"
+            "same: {<<: *b}\n"
+            "over: {<<: *b, size: 5}\n")
+    path = tmp_path / "m.yaml"
+    path.write_text(text)
+    assert read_yaml(path) == yaml.safe_load(text)
+    assert read_yaml(path)["over"] == {"stage": "one", "size": 5}
+    path.write_text(text + "again: {<<: *b, size: 5, size: 6}\n")
+    with pytest.raises(ConfigError, match=r"line 4.*duplicate key 'size'"):
+        read_yaml(path)
+
+
 # ---------------------------------------------------------------- data paths confined to the dataset folder
 
 

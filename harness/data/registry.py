@@ -369,7 +369,10 @@ class _UniqueKeyLoader(yaml.SafeLoader):
 
     def construct_mapping(self, node: yaml.MappingNode, deep: bool = False) -> dict:  # type: ignore[override]
         seen: dict[Any, int] = {}
-        for key_node, _ in node.value:
+        # Merge keys (`<<: *anchor`) may be overridden by the mapping's own keys: only those are checked.
+        own = [k for k, _ in node.value if k.tag != "tag:yaml.org,2002:merge"]
+        self.flatten_mapping(node)
+        for key_node in own:
             key = self.construct_object(key_node, deep=True)
             try:
                 first = seen.get(key)

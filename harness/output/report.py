@@ -6,6 +6,7 @@ import base64
 import html
 import io
 import math
+import re
 from pathlib import Path
 
 import numpy as np
@@ -308,7 +309,7 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
     md += extra_md
     (out / "report.md").write_text("\n".join(md))
     (out / "report.html").write_text(_html(title, intro + decision_md, note, foot, table, curves_note, pngs, failed,
-                                             noise_section.html + _md_to_html(extra_md)))
+                                             noise_section.html + _md_to_html(extra_md, out)))
     return {"markdown": out / "report.md", "html": out / "report.html", "csv": out / "results.csv",
             "table": table, "failed": len(failed), "decision": decision_text(boards, finished),
             "boards": boards, "pictures": list(pngs)}
@@ -320,8 +321,8 @@ def _setting_of(record: dict) -> str:
     return setting_label(record["config"])
 
 
-def _md_to_html(lines: list[str]) -> str:
-    """The decision section's small Markdown subset (headings, quotes, bullets, pipe tables) as HTML."""
+def _md_to_html(lines: list[str], folder: Path | None = None) -> str:
+    """A small Markdown subset (headings, quotes, bullets, pipe tables, PNG images in ``folder``) as HTML."""
     parts, table, bullets = [], [], []
 
     def flush() -> None:
@@ -349,6 +350,11 @@ def _md_to_html(lines: list[str]) -> str:
         if line.startswith("#"):
             level = len(line) - len(line.lstrip("#"))
             parts.append(f"<h{level}>{html.escape(line[level:].strip())}</h{level}>")
+        elif (image := re.fullmatch(r"!\[(.*)\]\(([\w.-]+\.png)\)", line.strip())) and folder is not None \
+                and (folder / image.group(2)).is_file():
+            blob = base64.b64encode((folder / image.group(2)).read_bytes()).decode()
+            parts.append(f'<figure><img alt="{html.escape(image.group(1))}" src="data:image/png;base64,{blob}">'
+                         f"<figcaption>{html.escape(image.group(2))}</figcaption></figure>")
         elif line.startswith("> "):
             parts.append(f'<p class="warn">{html.escape(line[2:].replace("**", ""))}</p>')
         elif line.strip():
