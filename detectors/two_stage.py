@@ -115,7 +115,7 @@ def _remember(cache: OrderedDict, key: str, value) -> None:
         cache.popitem(last=False)
 
 
-def ecdf_rank(reference_sorted: np.ndarray, scores: np.ndarray, rel_tol: float = 1e-9) -> np.ndarray:
+def ecdf_rank(reference_sorted: np.ndarray, scores: np.ndarray, rel_tol: float = 1e-5) -> np.ndarray:
     """Mid-rank of each score within a sorted reference sample, in [0, 1].
 
     Values within ``rel_tol`` (relative, at least absolute 1e-12) count as ties: a member's
