@@ -19,7 +19,7 @@ from logtrial.evaluation.paired import (
     min_detectable_difference,
     wilson_interval,
 )
-from logtrial.output.decision import _board, format_duration
+from logtrial.output.decision import _board, board_table, format_duration, over_budget, sentence
 from scipy.stats import binomtest, norm
 
 
@@ -129,3 +129,16 @@ def test_movement_sentence_names_shared_first_places() -> None:
     assert movement_sentence(t) == "first with clean labels: a, b; with noisy labels: b, c; fell back: a (rank 3)."
     same = pd.DataFrame({"detector": ["a", "b"], "clean": [1, 2], "noisy": [1, 2]})
     assert movement_sentence(same) == "first place stays with a from clean to noisy labels."
+
+
+def test_a_detector_far_over_its_budget_on_test_is_flagged_and_an_alternative_named() -> None:
+    # worked example: budget 5/week/100; a raises 40 on test (8x), d stays at 3 (0.6x)
+    recs = [_record("a", 1, "1111100000", 40.0, [5, 6, 7, 8, 9]), _record("d", 1, "1110000000", 3.0, [1, 1, 1])]
+    b = _board("s", "clean", "5", recs, ["a", "d"])
+    assert list(over_budget(b)) == [True, False]
+    table = board_table(b)
+    assert list(table["test alarms vs budget"]) == ["8.0x OVER", "0.6x"]
+    text = sentence(b, recs)
+    assert "pick a" in text and "8x the budget" in text and "best within 2x the budget on test is d (3/10)" in text
+    within = _board("s", "clean", "5", [_record("d", 1, "1110000000", 3.0, [1, 1, 1])], ["d"])
+    assert "Caution" not in sentence(within, recs)

@@ -26,6 +26,11 @@ METHOD = ("exact McNemar test on per-failure outcomes (two-sided, alpha 0.05; ch
           "scipy.stats.binomtest); intervals: Wilson score, 95 %")
 
 
+# A detector that raises more than this many times its alarm budget on test is flagged "OVER":
+# its validation-chosen threshold did not carry over (common practice: budgets are checked on live data).
+OVERRUN = 2.0
+
+
 def budget_label(key: str) -> str:
     """'5 alarms/week/100' for a budget key, or the policy name for the headline point."""
     return f"{key} alarms/week/100" if key[:1].isdigit() else key
@@ -195,9 +200,20 @@ def board_table(board: Board) -> pd.DataFrame:
         "vs best (McNemar p)": ["best" if i == 0 else f"{p:.3f}" + (" same" if s else "")
                                 for i, (p, s) in enumerate(zip(board.rows["p_vs_best"], board.rows["same_as_best"]))],
     })
+    if board.point != "policy":
+        ratio = board.rows["alarms_test"] / float(board.point)
+        out.insert(5, "test alarms vs budget", [
+            "–" if math.isnan(r) else f"{r:.1f}x" + (" OVER" if r > OVERRUN else "") for r in ratio])
     if board.task != "predict":
         out = out.drop(columns="median lead (h)")
     return out
+
+
+def over_budget(board: Board) -> pd.Series:
+    """Per row: the detector raised more than OVERRUN times the budget on test (its threshold did not carry over)."""
+    if board.point == "policy":
+        return pd.Series(False, index=board.rows.index)
+    return board.rows["alarms_test"] > OVERRUN * float(board.point)
 
 
 def sentence(board: Board, records: list[dict]) -> str:
@@ -213,7 +229,16 @@ def sentence(board: Board, records: list[dict]) -> str:
             f"{_fmt(top['false_per_caught'])} false alarms per failure")
     tie = (f"; {', '.join(ties)} cannot be told apart from it on {board.n} failures" if ties
            else f"; it is ahead of every other detector on {board.n} failures")
-    return f"{where}: pick {top['detector']}, which {verb} {top['k']}/{top['n']} failures{lead}; {cost}{tie}."
+    text = f"{where}: pick {top['detector']}, which {verb} {top['k']}/{top['n']} failures{lead}; {cost}{tie}."
+    over = over_budget(board)
+    if bool(over.iloc[0]):
+        within = board.rows[~over]
+        alt = (f" The best within {OVERRUN:g}x the budget on test is {within.iloc[0]['detector']} "
+               f"({within.iloc[0]['k']}/{within.iloc[0]['n']})." if len(within) else
+               f" No detector stayed within {OVERRUN:g}x the budget on test.")
+        text += (f" Caution: on test it raised {top['alarms_test'] / float(board.point):.0f}x the budget, so its "
+                 f"threshold chosen on validation did not carry over (drift or a shifted score scale).{alt}")
+    return text
 
 
 def noise_movement(boards: list[Board]) -> dict[tuple[str, str], pd.DataFrame]:
