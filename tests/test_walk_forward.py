@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 
+import numpy as np
 import pytest
 import yaml
 from conftest import relay_registry
@@ -115,3 +117,24 @@ def test_readme_walk_forward_example_loads(tmp_path: Path) -> None:
     exp = load_experiment(tmp_path / "exp.yaml")
     assert len(exp.runs) == 2
     assert exp.runs[0].split["kind"] == "walk_forward" and exp.runs[0].split["age_bin"] == "7 days 00:00:00"
+
+
+def test_each_fold_fits_its_semantic_vocabulary_on_its_own_training_windows(tmp_path: Path, home: Path) -> None:
+    # The rule of issue 13 applied per fold: no template first seen after a fold's training span shapes its
+    # vocabulary. Checked against the fold's own training windows counted with numpy.
+    exp = load_experiment(_experiment(tmp_path, vocabularies=[{"kind": "semantic", "k": 4}],
+                                      detectors=["rate_rule"]))
+    runner = Runner(exp, home, progress=False)
+    run = exp.runs[0]
+    base = runner.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]},
+                                   vocabulary={"kind": "templates"}))
+    folds = fold_splits(base.windows, run.split, base.horizon)
+    seen_per_fold = []
+    for i, fold in enumerate(folds):
+        prep = runner.prepared(replace(run, split={**run.split, "fold": i}))
+        seen = len(np.unique(base.windows.subset(fold.train).seq_values))
+        assert prep.windows.info["vocabulary_seen_templates"] == seen
+        assert prep.split is not None and len(prep.split.train) == len(fold.train)
+        seen_per_fold.append(seen)
+    # expanding training windows see at least as many templates as the fold before
+    assert seen_per_fold == sorted(seen_per_fold)

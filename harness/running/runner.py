@@ -35,7 +35,7 @@ from logtrial.running.walk_forward import combine_folds, figures_by_age, fold_sp
 from logtrial.windowing.sessions import load_entry_sessions, session_events
 from logtrial.windowing.splits import check_no_leakage, chronological_split, random_split
 from logtrial.windowing.vocabulary import fit_vocabulary, remap_windows
-from logtrial.windowing.windows import build_windows, label_windows
+from logtrial.windowing.windows import WindowSet, build_windows, label_windows
 
 RESULT_VERSION = 1
 
@@ -119,10 +119,13 @@ class Runner:
         seed = run.seed if run.split["kind"] == "random" else None
         key = json.dumps([run.dataset, run.windows, run.task, run.split, seed, run.vocabulary], sort_keys=True)
         if key not in self._prepared and is_walk_forward(run.split):
-            # one fold of a walk-forward evaluation: the shared windows, this fold's split
-            base = self.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]}))
+            # One fold of a walk-forward evaluation: the shared windows (in template ids), this fold's split,
+            # and a vocabulary fitted on this fold's training windows only.
+            base = self.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]},
+                                         vocabulary={"kind": "templates"}))
             fold = fold_splits(base.windows, run.split, base.horizon)[run.split["fold"]]
-            self._prepared[key] = Prepared(base.windows, fold, base.truth_labels, base.horizon)
+            ws = self.in_vocabulary(run, base.windows, fold.train)
+            self._prepared[key] = Prepared(ws, fold, base.truth_labels, base.horizon)
         if key not in self._prepared:
             data = self.dataset(run.dataset)
             ws = build_windows(data.events, data.vocab_size, run.windows)
@@ -134,14 +137,20 @@ class Runner:
                 split = random_split(ws, tuple(run.split["fractions"]), seed=run.seed)
             else:
                 split = chronological_split(ws, tuple(run.split["fractions"]), run.split.get("embargo"), horizon)
-            if run.vocabulary.get("kind", "templates") != "templates":
-                # Fitted on the templates of the training windows only; the vocabulary belongs to the
-                # dataset and split, not to a run: a fixed seed. Window times (hence the split) do not change.
-                seen = np.unique(ws.subset(split.train).seq_values)
-                ws = remap_windows(ws, fit_vocabulary(data.templates, seen, run.vocabulary, seed=0))
-                ws.info["vocabulary_seen_templates"] = int(len(seen))
+            ws = self.in_vocabulary(run, ws, split.train)
             self._prepared[key] = Prepared(ws, split, truth_labels, horizon)
         return self._prepared[key]
+
+    def in_vocabulary(self, run: RunConfig, ws: WindowSet, train: np.ndarray) -> WindowSet:
+        """The windows in the run's vocabulary, a semantic one fitted on the templates of ``train`` only."""
+        if run.vocabulary.get("kind", "templates") == "templates":
+            return ws
+        # The vocabulary belongs to the dataset and training span, not to a run: a fixed seed.
+        # Window times (hence the split) do not change.
+        seen = np.unique(ws.subset(train).seq_values)
+        out = remap_windows(ws, fit_vocabulary(self.dataset(run.dataset).templates, seen, run.vocabulary, seed=0))
+        out.info["vocabulary_seen_templates"] = int(len(seen))
+        return out
 
     # ----- one run, step by step -----------------------------------------------------------
     def execute(self, run: RunConfig) -> dict:
