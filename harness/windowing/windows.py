@@ -491,9 +491,8 @@ def _window_arrays(windows: WindowSet) -> tuple[np.ndarray, np.ndarray, np.ndarr
 
 def _overlaps(w_ent: np.ndarray, ws: np.ndarray, we: np.ndarray, incidents: pd.DataFrame) -> np.ndarray:
     """Per window: does it overlap any of the given incidents in time (same entity or global)?"""
-    out = np.zeros(len(ws), dtype=bool)
     if len(incidents) == 0 or len(ws) == 0:
-        return out
+        return np.zeros(len(ws), dtype=bool)
     i_ent = incidents["entity"].fillna("").astype(str).to_numpy(dtype=object)
     i_s, i_e = times_ns(incidents["start"]), times_ns(incidents["end"])
 
@@ -508,12 +507,17 @@ def _overlaps(w_ent: np.ndarray, ws: np.ndarray, we: np.ndarray, incidents: pd.D
         res[ok] = e_cummax[j[ok]] >= ws[sel_w][ok]
         return res
 
+    return _by_entity(w_ent, i_ent, hit)
+
+
+def _by_entity(w_ent: np.ndarray, i_ent: np.ndarray, hit) -> np.ndarray:
+    """Per window: ``hit(windows, incidents)`` against the incidents of its entity and the global ('') ones."""
+    out = np.zeros(len(w_ent), dtype=bool)
     glob = i_ent == ""
     if glob.any():
-        out |= hit(np.arange(len(ws)), np.flatnonzero(glob))
+        out |= hit(np.arange(len(w_ent)), np.flatnonzero(glob))
     if (~glob).any():
-        all_names = np.concatenate([w_ent, i_ent[~glob]])
-        codes, _ = pd.factorize(all_names)
+        codes, _ = pd.factorize(np.concatenate([w_ent, i_ent[~glob]]))
         w_codes, i_codes = codes[: len(w_ent)], codes[len(w_ent) :]
         w_order = np.argsort(w_codes, kind="stable")
         w_sorted = w_codes[w_order]
@@ -578,35 +582,19 @@ def label_windows(
 
 def _failure_ahead(w_ent: np.ndarray, we: np.ndarray, failures: pd.DataFrame, h: int) -> np.ndarray:
     """Per window: does a failure of its entity (or a global one) start in [end, end + horizon)?"""
-    out = np.zeros(len(we), dtype=bool)
     if len(failures) == 0 or len(we) == 0:
-        return out
+        return np.zeros(len(we), dtype=bool)
     f_ent = failures["entity"].fillna("").astype(str).to_numpy(dtype=object)
     f_s = times_ns(failures["start"])
 
-    def hit(sel_w: np.ndarray, starts: np.ndarray) -> np.ndarray:
-        """Does any of the given failure starts fall in [end, end + horizon) of the selected windows?"""
-        starts = np.sort(starts)
+    def hit(sel_w: np.ndarray, sel_f: np.ndarray) -> np.ndarray:
+        """Does any of the selected failures start in [end, end + horizon) of the selected windows?"""
+        starts = np.sort(f_s[sel_f])
         lo = np.searchsorted(starts, we[sel_w], side="left")
         hi = np.searchsorted(starts, we[sel_w] + h, side="left")
         return hi > lo
 
-    glob = f_ent == ""
-    if glob.any():
-        out |= hit(np.arange(len(we)), f_s[glob])
-    if (~glob).any():
-        codes, _ = pd.factorize(np.concatenate([w_ent, f_ent[~glob]]))
-        w_codes, f_codes = codes[: len(w_ent)], codes[len(w_ent) :]
-        w_order = np.argsort(w_codes, kind="stable")
-        w_sorted = w_codes[w_order]
-        fs = f_s[~glob]
-        for code in np.unique(f_codes):
-            lo, hi = np.searchsorted(w_sorted, [code, code + 1])
-            if lo == hi:
-                continue
-            sel_w = w_order[lo:hi]
-            out[sel_w] |= hit(sel_w, fs[f_codes == code])
-    return out
+    return _by_entity(w_ent, f_ent, hit)
 
 
 def window_incident_kind(windows: WindowSet, incidents: pd.DataFrame) -> np.ndarray:
