@@ -10,7 +10,7 @@ import math
 
 import numpy as np
 import pandas as pd
-from logtrial.output.decision import Board, budget_label
+from logtrial.output.decision import OVERRUN, Board, budget_label, over_budget
 
 OKABE_ITO = ["#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9", "#F0E442", "#000000"]
 GREY = "#B0B0B0"
@@ -138,14 +138,17 @@ def budget_dots_figure(boards: list[Board], setting: str, records_title, colours
                 colour = "#000000" if colour == GREY and r["same_as_best"] else colour
                 ax.plot([r["low"], r["high"]], [yy, yy], color=colour, lw=1.5)
                 ax.plot(r["share"], yy, "o", color=colour, mfc=colour if r["same_as_best"] else "white", ms=5)
-            ax.set_yticks(y, [f"{d} ({k}/{n})" for d, k, n in zip(rows["detector"], rows["k"], rows["n"])], fontsize=7)
+            over = over_budget(b).iloc[::-1]
+            ax.set_yticks(y, [f"{d} ({k}/{n}){' OVER' if o else ''}"
+                              for d, k, n, o in zip(rows["detector"], rows["k"], rows["n"], over)], fontsize=7)
             ax.set_xlim(-0.02, 1.02)
             ax.grid(alpha=0.3, axis="x")
             ax.set_title(f"{records_title(b)}\n{noise} labels, n = {b.n}", fontsize=8)
             if i == len(noises) - 1:
                 ax.set_xlabel("share of failures " + ("predicted" if b.task == "predict" else "caught"), fontsize=8)
     fig.suptitle("Failures caught at each operating point (whisker: 95 % Wilson interval; filled: not "
-                 "distinguishable from the best by an exact McNemar test)", fontsize=9)
+                 "distinguishable from the best by an exact McNemar test; OVER: raised more than "
+                 f"{OVERRUN:g}x the budget on test)", fontsize=9)
     fig.tight_layout()
     return fig
 
