@@ -32,6 +32,15 @@ def parse_timestamps(values: list[str], fmt: LineFormat) -> np.ndarray:
     return np.asarray(out.tz_convert("UTC").tz_localize(None), dtype="datetime64[us]")
 
 
+def stands_alone(fmt: LineFormat) -> bool:
+    """Tell whether each timestamp value parses the same whatever the other lines hold (no local-time
+    inference from the order of the lines)."""
+    ts = fmt.timestamp
+    if ts is None:
+        return True
+    return ts.unit is not None or ts.tz == "UTC" or "%z" in (ts.format or "") or "%Z" in (ts.format or "")
+
+
 def _localize(local: pd.DatetimeIndex, tz: str) -> pd.DatetimeIndex:
     """Local wall-clock times in ``tz`` as aware times; across clock changes, repeated hours are
     inferred from the order of the lines (else taken as the first occurrence) and skipped hours
@@ -75,7 +84,7 @@ class ParsedChunk:
 
     line: np.ndarray
     ts: np.ndarray
-    content: list | pa.Array
+    content: list | pa.Array | None  # None once split into tokens (`shape_keys.TokenColumn`)
     entity: list | pa.Array | str
     group: list | pa.Array | str | None
     tag: list | pa.Array | str

@@ -13,7 +13,8 @@ from __future__ import annotations
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
-from logtrial.data.header import LineParser, ParsedChunk, parse_timestamps, take_rows
+from logtrial.data.header import LineParser, ParsedChunk, parse_timestamps, stands_alone, take_rows
+from logtrial.data.header_split import split_form
 from logtrial.data.re2_form import extraction_pattern, plain_rows
 from logtrial.data.registry import LineFormat
 
@@ -30,6 +31,8 @@ class ColumnParser:
         self.lines = LineParser(fmt, path_group)
         self.fields = self.lines.fields
         self.re2 = extraction_pattern(fmt.regex)
+        # fields by cutting at spaces where the format allows it (only ever used with an RE2 form)
+        self.split = split_form(fmt.regex) if self.re2 is not None else None
         group_rx = self.lines.group_rx
         # the session key by RE2 only for a pattern without groups (Python takes its whole match)
         self.key_re2 = None
@@ -45,11 +48,17 @@ class ColumnParser:
         plain = np.asarray(plain_rows(lines), dtype=bool)
         where_plain = np.flatnonzero(plain)
         sub = lines if len(where_plain) == len(lines) else lines.take(pa.array(where_plain))
-        extracted = pc.extract_regex(sub, pattern=self.re2)
-        if not self._agrees(sub, extracted):
-            self.re2 = None
+        if self.split is not None:
+            valid = self.split.matches(sub, self.re2)
+            fields = self.split.read(sub, valid, self.fields)
+        else:
+            extracted = pc.extract_regex(sub, pattern=self.re2)
+            valid = np.asarray(extracted.is_valid(), dtype=bool)
+            fields = {f: extracted.field(f) for f in self.fields}
+        if not self._agrees(sub, valid, fields):
+            self.re2 = self.split = None
             return self.lines.parse(lines.to_pylist(), first_line)
-        cols, matched = self._plain_fields(extracted)
+        cols, matched = self._plain_fields(fields, valid)
         if len(where_plain) < len(lines):
             where_other = np.flatnonzero(~plain)
             other_cols, other_matched = self._python_fields(lines.take(pa.array(where_other)).to_pylist())
@@ -58,21 +67,20 @@ class ColumnParser:
             matched = np.concatenate([matched, other_matched])[np.asarray(back)]
         return self._rows(lines, cols, matched, first_line)
 
-    def _agrees(self, sub: pa.StringArray, extracted: pa.StructArray) -> bool:
-        """Tell whether RE2's answer equals Python's on a sample of rows."""
+    def _agrees(self, sub: pa.StringArray, valid: np.ndarray, fields: dict[str, pa.Array]) -> bool:
+        """Tell whether the column answer (which lines match, their fields) equals Python's on a sample of rows."""
         rx = self.lines.rx
-        valid = extracted.is_valid()
         for i in np.unique(np.linspace(0, len(sub) - 1, min(_CHECKED_ROWS, len(sub))).astype(np.int64)).tolist():
             m = rx.match(sub[i].as_py())
-            if (m is not None) != valid[i].as_py():
+            if (m is not None) != bool(valid[i]):
                 return False
-            if m is not None and any((m.group(f) or "") != extracted.field(f)[i].as_py() for f in self.fields):
+            if m is not None and any((m.group(f) or "") != fields[f][i].as_py() for f in self.fields):
                 return False
         return True
 
-    def _plain_fields(self, extracted: pa.StructArray) -> tuple[dict[str, pa.Array], np.ndarray]:
-        """Fields (content trimmed, session key found) of plain lines from RE2's extraction, and which matched."""
-        cols = {f: extracted.field(f) for f in self.fields}
+    def _plain_fields(self, fields: dict[str, pa.Array], valid: np.ndarray) -> tuple[dict[str, pa.Array], np.ndarray]:
+        """Fields (content trimmed, session key found) of plain lines from the column answer, and which matched."""
+        cols = dict(fields)
         cols["content"] = pc.utf8_trim_whitespace(cols["content"])
         if self.lines.group_rx is not None:
             if self.key_re2 is not None:
@@ -80,7 +88,7 @@ class ColumnParser:
                 cols[_KEY] = pc.if_else(found.is_valid(), found.field(_KEY), pa.scalar(None, pa.string()))
             else:
                 cols[_KEY] = self._python_keys(cols["content"].to_pylist())
-        return cols, np.asarray(extracted.is_valid(), dtype=bool)
+        return cols, valid
 
     def _python_fields(self, lines: list[str]) -> tuple[dict[str, pa.Array], np.ndarray]:
         """The same fields by Python's ``re``, line by line."""
@@ -118,15 +126,20 @@ class ColumnParser:
         if fmt.timestamp:
             parts = [cols[f] for f in fmt.timestamp.fields]
             joined = parts[0] if len(parts) == 1 else pc.binary_join_element_wise(*parts, " ")
-            values = joined.to_numpy(zero_copy_only=False)
-            ts = parse_timestamps(values, fmt)
+            if stands_alone(fmt):  # parse each distinct value once (log lines share their second)
+                encoded = joined.dictionary_encode()
+                distinct = parse_timestamps(encoded.dictionary.to_numpy(zero_copy_only=False), fmt)
+                ts = distinct[np.asarray(encoded.indices, dtype=np.int64)]
+            else:
+                ts = parse_timestamps(joined.to_numpy(zero_copy_only=False), fmt)
             nat = np.isnat(ts)
             if nat.any():
                 expect = fmt.timestamp.format or f"epoch {fmt.timestamp.unit}"
                 where = np.flatnonzero(nat)
                 texts = lines.take(pa.array(good[where])).to_pylist()
-                bad += [(int(line[i]), f"timestamp {values[i]!r} does not match {expect!r}", text)
-                        for i, text in zip(where.tolist(), texts)]
+                values = joined.take(pa.array(where)).to_pylist()
+                bad += [(int(line[i]), f"timestamp {value!r} does not match {expect!r}", text)
+                        for i, value, text in zip(where.tolist(), values, texts)]
                 keep = np.flatnonzero(~nat)
         else:
             ts = line.astype("datetime64[s]").astype("datetime64[us]")

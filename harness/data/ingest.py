@@ -21,7 +21,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from logtrial import __version__
 from logtrial.data.distributed import LEARN_SHARE, dask_map, learn_count
-from logtrial.data.header import ParsedChunk, _strptime, path_group  # noqa: F401  (_strptime: tests)
+from logtrial.data.header import ParsedChunk, _strptime, path_group, stands_alone  # noqa: F401  (_strptime: tests)
 from logtrial.data.lines import RANGE_BYTES, byte_ranges
 from logtrial.data.mining import DrainMiner, TemplateMiner, registry_miner
 from logtrial.data.pipeline import RangeJob, RangeResult, default_workers, ordered_map, parse_range
@@ -36,6 +36,7 @@ MAX_REJECTED_SHARE = 0.5  # of all lines, checked from SHARE_FROM_LINES lines on
 SHARE_FROM_LINES = 10_000
 MAX_QUARANTINE_BYTES = 256 * 2**20
 SMALL_RANGE_BYTES = 1 << 22
+ROW_GROUP_ROWS = 1 << 18
 _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,127}")
 _TMP_MARK = ".tmp-"
 _OWNER = "owner.json"
@@ -246,8 +247,7 @@ def default_range_bytes(fmt: LineFormat) -> int:
     one chunk, so such formats keep the chunks ingest always used (RANGE_BYTES); for every
     other format the cut changes nothing in the output.
     """
-    ts = fmt.timestamp
-    if ts is None or ts.unit is not None or ts.tz == "UTC" or "%z" in (ts.format or "") or "%Z" in (ts.format or ""):
+    if stands_alone(fmt):
         return SMALL_RANGE_BYTES
     return RANGE_BYTES
 
@@ -350,7 +350,10 @@ def _write_table(
     plan = [(path, rel, byte_ranges(path, range_bytes)) for path, rel in zip(files, names)]
     if sum(len(r) for _, _, r in plan) < 2:
         workers = 1  # one range: nothing to run side by side
-    jobs = [RangeJob(rng, fmt, path_group(rel, fmt), strict, masks) for path, rel, ranges in plan for rng in ranges]
+    # the local engine also splits the masked contents into tokens in the workers (the miner keys lines by them)
+    delimiters = tuple(miner.delimiters()) if masks is not None and engine != "dask" else None
+    jobs = [RangeJob(rng, fmt, path_group(rel, fmt), strict, masks, delimiters)
+            for path, rel, ranges in plan for rng in ranges]
     owners = [(path, rel, i == 0) for path, rel, ranges in plan for i in range(len(ranges))]
     if engine == "dask":
         if masks is None:
@@ -365,7 +368,7 @@ def _write_table(
         results: Iterator[RangeResult] = staged()
     else:
         results = ordered_map(parse_range, jobs, workers)
-    writer = pq.ParquetWriter(out / "events.parquet", EVENT_SCHEMA, compression="zstd")
+    writer = _EventWriter(out / "events.parquet")
     written = 0
     with open(out / "quarantine.tsv", "w", encoding="utf-8") as qf:
         # `line` counts across all files (the event table's numbering); `file_line` within `file`.
@@ -401,16 +404,17 @@ def _write_table(
                 chunk = res.chunk
                 if chunk is not None:
                     chunk.line += offset
-                    contents = chunk.content.to_pylist() if isinstance(chunk.content, pa.Array) else chunk.content
+                    contents = chunk.content
                     if res.matched is not None:
                         events = res.matched.astype(np.int32, copy=True)
                         residue = np.flatnonzero(events < 0)
                         if len(residue):
-                            events[residue] = miner.add_many_masked([contents[i] for i in residue])
+                            events[residue] = miner.add_many_masked(_take(contents, residue))
                     elif res.masked:
-                        events = np.asarray(miner.add_many_masked(contents), dtype=np.int32)
+                        events = np.asarray(miner.add_many_masked(contents, res.tokens), dtype=np.int32)
                     else:
-                        events = np.asarray(miner.add_many(contents), dtype=np.int32)
+                        plain = contents.to_pylist() if isinstance(contents, pa.Array) else contents
+                        events = np.asarray(miner.add_many(plain), dtype=np.int32)
                     writer.write_table(_arrow_chunk(chunk, events))
                     if engine == "dask":
                         counters.events.append(events)
@@ -419,6 +423,43 @@ def _write_table(
         finally:
             writer.close()
             bar.close()
+
+
+class _EventWriter:
+    """Writes the event table in row groups of at least ROW_GROUP_ROWS rows (few, large groups write faster)."""
+
+    def __init__(self, path: Path):
+        # dictionaries only where values repeat a lot (session keys and line numbers rarely do)
+        self._writer = pq.ParquetWriter(path, EVENT_SCHEMA, compression="zstd",
+                                        use_dictionary=["entity", "event", "tag"])
+        self._held: list[pa.Table] = []
+        self._rows = 0
+
+    def write_table(self, table: pa.Table) -> None:
+        """Add rows; write a row group once enough are held."""
+        self._held.append(table)
+        self._rows += table.num_rows
+        if self._rows >= ROW_GROUP_ROWS:
+            self._flush()
+
+    def _flush(self) -> None:
+        if self._held:
+            self._writer.write_table(pa.concat_tables(self._held), row_group_size=max(self._rows, 1))
+        self._held, self._rows = [], 0
+
+    def close(self) -> None:
+        """Write what is held and close the file."""
+        try:
+            self._flush()
+        finally:
+            self._writer.close()
+
+
+def _take(contents: pa.Array | list[str], rows: np.ndarray) -> pa.Array | list[str]:
+    """The contents at the given rows."""
+    if isinstance(contents, pa.Array):
+        return contents.take(pa.array(rows))
+    return [contents[i] for i in rows.tolist()]
 
 
 def _arrow_chunk(chunk: ParsedChunk, events: np.ndarray) -> pa.Table:

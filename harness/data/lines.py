@@ -72,12 +72,13 @@ def decode_range(rng: ByteRange, encoding: str, strict: bool, column: bool = Fal
         blob = blob[3:]  # a UTF-8 byte-order mark is not part of the first line
     out = DecodedRange(lines=[])
     if column and _is_utf8(encoding) and len(blob) < 2**31:
+        lines = _line_column(blob)
         try:
-            blob.decode("utf-8")
-        except UnicodeDecodeError:
+            lines.validate(full=True)  # valid UTF-8 (Arrow's check; no Python string is built)
+        except pa.ArrowInvalid:
             pass
         else:
-            out.lines = _line_column(blob)
+            out.lines = lines
             return out
     try:
         lines = blob.decode(encoding).split("\n")

@@ -55,7 +55,9 @@ from itertools import repeat
 from typing import Any, Callable, Iterator, Protocol, Sequence, runtime_checkable
 
 import numpy as np
+import pyarrow as pa
 from logtrial.data.masking import mask_contents
+from logtrial.data.shape_keys import UNKNOWN_CODE, ShapeCoder, TokenColumn, tokenise_column
 
 WILDCARD = "<*>"
 
@@ -68,11 +70,14 @@ _NEVER_A_TOKEN = " "
 
 # Code of a token that was never a literal template token (codes are >= 0; a
 # `<*>` position in a leaf table is -1).
-_UNKNOWN_CODE = -2
+_UNKNOWN_CODE = UNKNOWN_CODE
 _WILD_CODE = -1
 
 # Leaves with at least this many templates are matched with NumPy.
 _TABLE_FROM = 32
+
+# Shape keys are computed this many lines at a time (adaptive between the bounds).
+_BLOCK_FROM, _BLOCK_MIN, _BLOCK_MAX = 1024, 64, 16384
 
 # Caches are cleared when they reach this many entries (bounds memory on logs
 # whose lines are all distinct; 2**16 measured faster than 2**18 on 500k HDFS
@@ -201,11 +206,13 @@ class DrainMiner:
 
         # a code for every token that was ever a literal (non-<*>) template token
         self._codes: dict[str, int] = {}
+        self._code_list: list[str] = []  # the same tokens in code order
         self._rows: list[int] = []  # row of each template in its leaf
 
         self._by_raw: dict[str, list] = {}
         self._by_masked: dict[str, list] = {}
         self._by_shape: dict[tuple[int, ...], list] = {}
+        self._by_key: dict[bytes, list] = {}  # the same answers by shape keys (`shape_keys`)
 
     # ----------------------------------------------------------- public API
 
@@ -220,15 +227,25 @@ class DrainMiner:
         """Assign contents in order; return their template ids as int32."""
         if self._masks and len(contents) >= _BULK_FROM:
             # masks over the whole column at once (same strings as re.sub mask after mask)
-            return self.add_many_masked(mask_contents(contents, self._mask_texts).to_pylist())
+            return self.add_many_masked(mask_contents(contents, self._mask_texts))
         with _gc_paused():
             ids = self._assign_all(contents)
         return self._counted(ids)
 
-    def add_many_masked(self, masked: Sequence[str]) -> np.ndarray:
-        """Assign contents already masked (by `mask_patterns()`, in order) in order; return template ids as int32."""
+    def add_many_masked(self, masked: Sequence[str] | pa.Array | None, tokens: TokenColumn | None = None
+                        ) -> np.ndarray:
+        """Assign contents already masked (by `mask_patterns()`, in order) in order; return template ids as int32.
+
+        Instead of the contents, ``tokens`` may give them as `tokenise_column` splits them
+        (with `delimiters()`), e.g. in a worker process; ``masked`` is then not read.
+        """
         with _gc_paused():
-            ids = self._assign_all_masked(masked)
+            if tokens is not None:
+                ids = self._assign_column(tokens)
+            elif isinstance(masked, pa.Array):
+                ids = self._assign_column(tokenise_column(masked, self._delimiters))
+            else:
+                ids = self._assign_all_masked(masked)
         return self._counted(ids)
 
     def _counted(self, ids: list[int]) -> np.ndarray:
@@ -277,8 +294,12 @@ class DrainMiner:
     def frozen_copy(self) -> "DrainMiner":
         """A copy without the answer caches, small enough to ship to other processes for `match_masked_many`."""
         clone = copy.copy(self)
-        clone._by_raw, clone._by_masked, clone._by_shape = {}, {}, {}
+        clone._by_raw, clone._by_masked, clone._by_shape, clone._by_key = {}, {}, {}, {}
         return clone
+
+    def delimiters(self) -> list[str]:
+        """Return the extra token delimiters."""
+        return list(self._delimiters)
 
     def mask_patterns(self) -> list[str]:
         """Return the mask regexes, in the order they are applied."""
@@ -346,6 +367,62 @@ class DrainMiner:
             else:
                 append(resolve(entry))
         return ids
+
+    def _assign_column(self, tokens: TokenColumn) -> list[int]:
+        """Return the template id of each line of a token column (`tokenise_column`), answering from shape keys.
+
+        Keys come a block of lines at a time; when a line gives the miner new literal
+        tokens the keys of the rest of the block may be stale, so the next block starts
+        after that line. The block size grows while blocks pass without new tokens and
+        shrinks when they do not.
+        """
+        codes = self._codes
+        coder = ShapeCoder(tokens, codes)
+        texts = tokens.texts
+        key_get = self._by_key.get
+        ids: list[int] = []
+        append = ids.append
+        n, start, block = len(tokens), 0, _BLOCK_FROM
+        while start < n:
+            stop = min(n, start + block)
+            coder.sync(self._code_list)
+            n_codes = len(codes)
+            for i, key in enumerate(coder.keys(start, stop), start):
+                entry = key_get(key) if key is not None else None
+                if entry is not None and entry[1].version == entry[2] and entry[3] == self._routing_version:
+                    append(entry[0])
+                    continue
+                if key is None:
+                    append(self._assign_masked_one(texts[i]))
+                else:
+                    append(self._resolve_key(key, coder.tokens(i)))
+                if len(codes) != n_codes:
+                    stop = i + 1
+                    block = max(_BLOCK_MIN, block // 4)
+                    break
+            else:
+                block = min(_BLOCK_MAX, block * 2)
+            start = stop
+        return ids
+
+    def _assign_masked_one(self, content: str) -> int:
+        """Return the template id of one masked content (the per-line caches)."""
+        entry = self._by_masked.get(content)
+        if entry is None:
+            entry = self._new_entry(content)
+        if entry[1].version == entry[2] and entry[3] == self._routing_version:
+            return entry[0]
+        return self._resolve(entry)
+
+    def _resolve_key(self, key: bytes, tokens: tuple[str, ...]) -> int:
+        """Run Drain for a line's tokens; remember the answer under its shape key if nothing changed."""
+        cid, changed = self._assign_tokens(tokens)
+        if not changed:
+            leaf = self._leaves[cid]
+            if len(self._by_key) >= _CACHE_LIMIT:
+                self._by_key.clear()
+            self._by_key[key] = [cid, leaf, leaf.version, self._routing_version]
+        return cid
 
     def _assign_content(self, content: str) -> int:
         """Return the template id for one content, using the caches."""
@@ -490,6 +567,7 @@ class DrainMiner:
         for tok in tokens:
             if tok != WILDCARD and tok not in codes:
                 codes[tok] = len(codes)
+                self._code_list.append(tok)
         leaf = self._insert(tokens)
         self._rows.append(len(leaf.clusters))
         leaf.clusters.append(cid)

@@ -11,11 +11,13 @@ from itertools import islice
 from typing import Callable, Iterable, Iterator, TypeVar
 
 import numpy as np
+import pyarrow as pa
 from logtrial.data.header import ParsedChunk
 from logtrial.data.header_columns import ColumnParser
 from logtrial.data.lines import ByteRange, decode_range
 from logtrial.data.masking import mask_contents
 from logtrial.data.registry import LineFormat
+from logtrial.data.shape_keys import TokenColumn, tokenise_column
 
 J = TypeVar("J")
 R = TypeVar("R")
@@ -30,6 +32,7 @@ class RangeJob:
     path_group: str | None
     strict: bool
     masks: tuple[str, ...] | None
+    delimiters: tuple[str, ...] | None = None  # set: also split the masked contents into tokens (`tokenise_column`)
 
 
 @dataclass
@@ -44,6 +47,7 @@ class RangeResult:
     strict_error: tuple[int, int] | None = None
     masked: bool = False
     matched: np.ndarray | None = None  # template ids against frozen templates (-1: none), distributed ingest only
+    tokens: TokenColumn | None = None  # the masked contents as tokens, when the job asked for them
 
 
 def parse_range(job: RangeJob) -> RangeResult:
@@ -53,9 +57,14 @@ def parse_range(job: RangeJob) -> RangeResult:
         return RangeResult(0, job.rng.size, None, strict_error=decoded.strict_error)
     chunk, rejects = ColumnParser(job.fmt, job.path_group).parse(decoded.lines, 1)
     masked = job.masks is not None
+    tokens = None
     if chunk is not None and masked:
         chunk.content = mask_contents(chunk.content, job.masks)
-    return RangeResult(len(decoded.lines), job.rng.size, chunk, rejects, decoded.bad_lines, masked=masked)
+        if job.delimiters is not None and isinstance(chunk.content, pa.Array):
+            tokens = tokenise_column(chunk.content, job.delimiters)
+            chunk.content = None  # the tokens carry it (less to send back)
+    return RangeResult(len(decoded.lines), job.rng.size, chunk, rejects, decoded.bad_lines, masked=masked,
+                       tokens=tokens)
 
 
 def default_workers() -> int:

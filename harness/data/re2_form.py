@@ -14,10 +14,16 @@ from __future__ import annotations
 import re
 from functools import lru_cache
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
 NOT_PLAIN = r"[^\t\x20-\x7e]"
+
+# per byte value: not printable ASCII and not tab
+_NOT_PLAIN_BYTE = np.ones(256, dtype=bool)
+_NOT_PLAIN_BYTE[0x20:0x7F] = False
+_NOT_PLAIN_BYTE[0x09] = False
 
 
 def rewrite_groups(pattern: str, first_unnamed: str | None = None) -> str:
@@ -118,6 +124,23 @@ def _sre_parser():
     return parser
 
 
-def plain_rows(arr: pa.Array) -> "pa.Array":
-    """Boolean array: which strings are plain (printable ASCII and tab only)."""
-    return pc.invert(pc.match_substring_regex(arr, NOT_PLAIN))
+def plain_rows(arr: pa.Array) -> np.ndarray:
+    """Which strings are plain (printable ASCII and tab only); a null is not plain."""
+    n = len(arr)
+    if not (pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type)):
+        raise TypeError(f"plain_rows needs strings, got {arr.type}")
+    if n == 0:
+        return np.zeros(0, dtype=bool)
+    width = np.int64 if pa.types.is_large_string(arr.type) else np.int32
+    _, offset_buf, data_buf = arr.buffers()
+    offsets = np.frombuffer(offset_buf, dtype=width)[arr.offset : arr.offset + n + 1].astype(np.int64)
+    data = np.frombuffer(data_buf, dtype=np.uint8)[offsets[0] : offsets[-1]] if data_buf is not None else \
+        np.zeros(0, dtype=np.uint8)
+    out = np.ones(n, dtype=bool)
+    if len(data) and (data.min() < 0x20 or data.max() > 0x7E):  # else every byte is printable ASCII
+        bad = _NOT_PLAIN_BYTE[data]
+        rows = np.searchsorted(offsets, np.flatnonzero(bad) + offsets[0], side="right") - 1
+        out[rows] = False
+    if arr.null_count:
+        out &= np.asarray(arr.is_valid(), dtype=bool)
+    return out
