@@ -65,7 +65,6 @@ def test_duplicate_experiment_keys_are_refused(tmp_path: Path, capsys) -> None:
 def test_yaml_merge_keys_still_work_and_may_be_overridden(tmp_path: Path) -> None:
     # reference: the YAML merge key type (yaml.org/type/merge.html) as PyYAML's SafeLoader reads it.
     import yaml
-
     from logtrial.data.registry import read_yaml
 
     text = ("base: &b {stage: one, size: 2}\n"

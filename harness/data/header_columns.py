@@ -102,11 +102,12 @@ class ColumnParser:
             cols[_KEY] = self._python_keys(content)
         return cols, np.fromiter((m is not None for m in found), dtype=bool, count=len(found))
 
-    def _python_keys(self, content: list[str]) -> pa.Array:
-        """Session keys: the first match of the group pattern in each content (None where there is none)."""
+    def _python_keys(self, content: list[str | None]) -> pa.Array:
+        """Session keys: the first match of the group pattern in each content (None where there is none or no content)."""
         rx = self.lines.group_rx
         which = 1 if rx.groups else 0
-        return pa.array([m.group(which) if (m := rx.search(c)) else None for c in content], type=pa.string())
+        return pa.array([m.group(which) if c is not None and (m := rx.search(c)) else None for c in content],
+                        type=pa.string())
 
     def _rows(self, lines: pa.StringArray, cols: dict[str, pa.Array], matched: np.ndarray,
               first_line: int) -> tuple[ParsedChunk | None, list]:

@@ -13,7 +13,7 @@ import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Iterator
+from typing import Iterator, Sequence
 
 import numpy as np
 import pandas as pd
@@ -483,9 +483,34 @@ def _arrow_chunk(chunk: ParsedChunk, events: np.ndarray) -> pa.Table:
     return pa.Table.from_arrays(cols, schema=EVENT_SCHEMA)
 
 
-def read_events(path: Path) -> pd.DataFrame:
-    """Load an event table written by ingest."""
-    return pq.read_table(path).to_pandas()
+def read_events(path: Path, columns: list[str] | None = None, categories: Sequence[str] = ()) -> pd.DataFrame:
+    """Load an event table written by ingest (all columns, or the given ones; ``categories`` as pandas categoricals)."""
+    table = pq.read_table(path, columns=columns, read_dictionary=list(categories) or None)
+    # Arrow's buffers are freed column by column as pandas takes them over, and handed back to the system
+    frame = table.to_pandas(self_destruct=True, split_blocks=True)
+    del table
+    pa.default_memory_pool().release_unused()
+    return frame
+
+
+WINDOW_COLUMNS = ["ts", "entity", "event", "group"]
+TEXT_COLUMNS = ["entity", "group", "tag"]  # few distinct values each: read as categoricals, a code per event
+
+
+def window_events(events: pd.DataFrame, keep_group: bool = True) -> pd.DataFrame:
+    """The columns windows are built from (the session key only when kept); text as categoricals with the
+    narrowest codes (a byte per event for up to 127 entities)."""
+    wanted = [c for c in WINDOW_COLUMNS if c in events.columns and (keep_group or c != "group")]
+    slim = events[wanted].copy()
+    for name in ("entity", "group"):
+        if name in slim:
+            col = slim[name]
+            if not isinstance(col.dtype, pd.CategoricalDtype):
+                col = col.fillna("") if name == "entity" else col
+                slim[name] = col.astype("category")
+            else:  # codes read from Arrow are int32 whatever the number of categories
+                slim[name] = pd.Categorical.from_codes(col.cat.codes.to_numpy(), dtype=col.dtype)
+    return slim
 
 
 def dataset_folder(entry, home: Path, mirror: Path | None = None, progress: bool = False) -> Path:

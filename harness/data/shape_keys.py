@@ -53,14 +53,16 @@ def tokenise_column(contents: pa.Array, delimiters: Sequence[str]) -> TokenColum
     if any(not d for d in delimiters):  # Python puts a space between every character; leave it to Python
         python_rows[:] = True
     arr = pc.ascii_trim_whitespace(contents)
-    for delimiter in delimiters:
-        arr = pc.replace_substring(arr, pattern=delimiter, replacement=" ")
+    if delimiters:
+        for delimiter in delimiters:
+            arr = pc.replace_substring(arr, pattern=delimiter, replacement=" ")
+        arr = pc.ascii_trim_whitespace(arr)  # a delimiter at either end became a space that split() ignores
     tokens = pc.ascii_split_whitespace(arr)
     offsets = np.asarray(tokens.offsets, dtype=np.int64)
     offsets = (offsets - offsets[0]).astype(np.int32)
     flat = tokens.flatten()
     # Arrow splits an empty string into one empty token; Python into none
-    empty = np.flatnonzero(np.asarray(pc.fill_null(pc.equal(arr, ""), True), dtype=bool))
+    empty = np.flatnonzero(np.asarray(pc.fill_null(pc.equal(arr, ""), False), dtype=bool))
     if len(empty):
         keep = np.ones(len(flat), dtype=bool)
         keep[offsets[empty]] = False

@@ -78,13 +78,13 @@ def incidents_from_tags(
     gap = pd.Timedelta(gap)
     if pd.isna(gap) or gap < pd.Timedelta(0):
         raise ConfigError(f"labels.gap: must be a non-negative duration, got {gap}")
-    tags = events["tag"].fillna("").astype(str)
+    tags = events["tag"].astype("str").fillna("")
     alert = tags.to_numpy() != ""
     sub = events.loc[alert]
     if len(sub) == 0:
         return empty_incidents().assign(mode=pd.array([], dtype="str"))
     sub_tags = tags.to_numpy()[alert]
-    ent = sub["entity"].fillna("").astype(str).to_numpy(dtype=object)
+    ent = sub["entity"].astype("str").fillna("").to_numpy(dtype=object)
     ts = times_ns(sub["ts"])
     ent_codes, ent_uniques = pd.factorize(ent, sort=True)
     order = np.lexsort((ts, ent_codes))
@@ -139,7 +139,7 @@ def incidents_from_sessions(
         return empty_incidents().assign(group=pd.array([], dtype="str"))
     g = sub["group"].astype(str).to_numpy(dtype=object)
     ts = times_ns(sub["ts"])
-    ent = sub["entity"].fillna("").astype(str).to_numpy(dtype=object)
+    ent = sub["entity"].astype("str").fillna("").to_numpy(dtype=object)
     codes, uniques = pd.factorize(g, sort=True)
     order = np.lexsort((ts, codes))
     codes, ts, ent = codes[order], ts[order], ent[order]

@@ -18,7 +18,7 @@ from typing import Iterable
 import numpy as np
 import pandas as pd
 from logtrial.data.acquire import log_files
-from logtrial.data.ingest import dataset_folder, ingest_files, read_events
+from logtrial.data.ingest import TEXT_COLUMNS, dataset_folder, ingest_files, read_events, window_events
 from logtrial.data.registry import SessionEntry, get_entry, load_registry
 from logtrial.detectors.base import Detector
 from logtrial.detectors.registry import create
@@ -106,8 +106,11 @@ class Runner:
             files = log_files(entry, folder)
             res = ingest_files(entry.name, files, entry.format, entry.miner, self.home / "tables",
                                progress=self.progress)
-            events = read_events(res.events)
+            events = read_events(res.events, categories=TEXT_COLUMNS)
             truth = truth_incidents(entry, events, folder)
+            # the rest of the run only builds windows: keep what they read (session keys only for session windows)
+            sessions = any(r.dataset == name and r.windows.get("kind") == "session" for r in self.exp.runs)
+            events = window_events(events, keep_group=sessions)
             templates = pd.read_csv(res.templates, keep_default_na=False)["template"].astype(str).tolist()
             self._datasets[name] = DatasetData(name, events, int(res.manifest["templates"]), truth,
                                                res.manifest["key"], templates)

@@ -258,10 +258,26 @@ def _assemble(
 
 def _entity_sorted(events: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Entity codes, entity names per event, ns times, and the (entity, time) stable order."""
-    codes, uniques = pd.factorize(events["entity"].fillna("").astype("str"), sort=True)
+    codes, names = entity_codes(events["entity"])
     ts = times_ns(events["ts"])
     order = np.lexsort((ts, codes))
-    return codes, np.asarray(uniques, dtype=object), ts, order
+    return codes, names, ts, order
+
+
+def entity_codes(entity: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Codes of an entity column (a missing entity is "") and the names they stand for, sorted.
+
+    A categorical column is coded from its categories, without a string per event.
+    """
+    if isinstance(entity.dtype, pd.CategoricalDtype):
+        cat = entity.array
+        names = np.asarray([str(x) for x in cat.categories] + [""], dtype=object)
+        raw = np.asarray(cat.codes, dtype=np.int64)
+        raw = np.where(raw < 0, len(names) - 1, raw)
+        uniques, inverse = np.unique(names, return_inverse=True)
+        return inverse[raw].astype(np.int64), np.asarray(uniques, dtype=object)
+    codes, uniques = pd.factorize(entity.fillna("").astype("str"), sort=True)
+    return codes, np.asarray(uniques, dtype=object)
 
 
 def session_windows(events: pd.DataFrame, vocab_size: int) -> WindowSet:
@@ -279,7 +295,7 @@ def session_windows(events: pd.DataFrame, vocab_size: int) -> WindowSet:
     order = np.lexsort((ts_all[idx_keep], codes))
     ev_idx = idx_keep[order]
     codes_sorted = codes[order]
-    ent_codes, ent_names = pd.factorize(events["entity"].fillna("").astype("str"))
+    ent_codes, ent_names = entity_codes(events["entity"])
     info = {"kind": "session", "dropped_events": int(len(events) - len(idx_keep))}
     ws = _assemble(
         codes_sorted, np.zeros(len(ev_idx), np.int64), ev_idx, ev, None, None, ts_all, vocab_size, info,
@@ -307,12 +323,14 @@ def time_windows(
     c = codes[order]
     t = ts[order]
     del ts, codes
+    ev_sorted = ev[order].astype(np.int32, copy=False)
+    del order
     w_code, k = _nonempty_windows(c, t, s, d)
     starts = k * d
     del k
     lo, hi = _slice_bounds(c, t, w_code, starts, starts + s)
-    del t
-    return _assemble_slices(w_code, starts, starts + s, lo, hi, order, ev, names, vocab_size, info)
+    del t, c
+    return _assemble_slices(w_code, starts, starts + s, lo, hi, ev_sorted, names, vocab_size, info)
 
 
 def _nonempty_windows(c: np.ndarray, t: np.ndarray, s: int, d: int) -> tuple[np.ndarray, np.ndarray]:
@@ -352,7 +370,21 @@ def _slice_bounds(
     c: np.ndarray, t: np.ndarray, w_code: np.ndarray, w_start: np.ndarray, w_end: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray]:
     """Positions [lo, hi) in the (entity, time)-sorted events of each window's events (time in [start, end))."""
-    # Times become dense ranks so that (entity, rank) packs into one sortable int64 key.
+    if len(t) == 0 or len(w_code) == 0:
+        return np.zeros(len(w_code), np.int64), np.zeros(len(w_code), np.int64)
+    # (entity, time) packs into one sortable int64 key: entity * span + (time - t0) where that cannot overflow
+    t0 = min(int(t.min()), int(w_start.min()))
+    span = max(int(t.max()), int(w_end.max())) - t0 + 1
+    if span * (int(c.max()) + 1) < 2**62:
+        ev_key = c.astype(np.int64)
+        ev_key *= span
+        ev_key += t
+        ev_key -= t0
+        win_base = w_code * span - t0
+        lo = np.searchsorted(ev_key, win_base + w_start, side="left")
+        hi = np.searchsorted(ev_key, win_base + w_end, side="left")
+        return lo, hi
+    # else times become dense ranks first
     stamps = np.unique(np.concatenate([t, w_start, w_end]))
     span = len(stamps)
     ev_key = c.astype(np.int64) * span + np.searchsorted(stamps, t)
@@ -362,7 +394,7 @@ def _slice_bounds(
 
 
 # Windows are turned into counts and sequences this many event slots at a time (bounds temporaries).
-_SLICE_BLOCK = 1 << 22
+_SLICE_BLOCK = 1 << 20
 
 
 def _assemble_slices(
@@ -371,13 +403,12 @@ def _assemble_slices(
     end_ns: np.ndarray,
     lo: np.ndarray,
     hi: np.ndarray,
-    order: np.ndarray,
-    ev: np.ndarray,
+    ev_sorted: np.ndarray,
     names: np.ndarray,
     vocab_size: int,
     info: dict,
 ) -> WindowSet:
-    """A WindowSet from windows given as slices [lo, hi) of the (entity, time)-sorted events.
+    """A WindowSet from windows given as slices [lo, hi) of the (entity, time)-sorted event ids ``ev_sorted``.
 
     Sequences and counts are built block by block with int32 positions; no array holds
     an int64 per (event, window) pair.
@@ -387,7 +418,6 @@ def _assemble_slices(
     offsets = np.zeros(n_win + 1, dtype=np.int64)
     np.cumsum(lengths, out=offsets[1:])
     total = int(offsets[-1])
-    ev_sorted = ev[order].astype(np.int32, copy=False)
     pos_type = np.int32 if len(ev_sorted) < 2**31 else np.int64
     values = np.empty(total, dtype=np.int32)
     # count matrix arrays, filled block by block (a window's distinct events never outnumber its events)
@@ -464,7 +494,9 @@ def count_windows(events: pd.DataFrame, vocab_size: int, n: int, step: int | Non
     del run, j
     t = ts[order]
     info = {"kind": "count", "n": n, "step": step}
-    return _assemble_slices(c[lo], t[lo], t[hi - 1] + _ONE_US, lo, hi, order, ev, names, vocab_size, info)
+    ev_sorted = ev[order].astype(np.int32, copy=False)
+    del order
+    return _assemble_slices(c[lo], t[lo], t[hi - 1] + _ONE_US, lo, hi, ev_sorted, names, vocab_size, info)
 
 
 # ---------------------------------------------------------------------------
