@@ -287,22 +287,52 @@ def session_windows(events: pd.DataFrame, vocab_size: int) -> WindowSet:
     """
     ev = events["event"].to_numpy()
     _check_vocab(ev, vocab_size)
-    grp = events["group"].astype("str")
-    has = (grp.notna() & (grp != "")).to_numpy()
-    idx_keep = np.flatnonzero(has)
-    codes, uniques = pd.factorize(grp.iloc[idx_keep], sort=True)
+    key_codes, uniques = session_codes(events["group"])
+    idx_keep = np.flatnonzero(key_codes >= 0)
+    codes = key_codes[idx_keep]
+    del key_codes
     ts_all = times_ns(events["ts"])
-    order = np.lexsort((ts_all[idx_keep], codes))
+    t_keep = ts_all[idx_keep]
+    del ts_all
+    order = np.lexsort((t_keep, codes))
     ev_idx = idx_keep[order]
     codes_sorted = codes[order]
+    t_sorted = t_keep[order]
+    del order, codes, t_keep, idx_keep
     ent_codes, ent_names = entity_codes(events["entity"])
-    info = {"kind": "session", "dropped_events": int(len(events) - len(idx_keep))}
-    ws = _assemble(
-        codes_sorted, np.zeros(len(ev_idx), np.int64), ev_idx, ev, None, None, ts_all, vocab_size, info,
-        entity=(np.asarray(ent_names, dtype=object), ent_codes[ev_idx]),
-        extra_meta={"group": (np.asarray(uniques, dtype=object), codes_sorted)},
-    )
+    info = {"kind": "session", "dropped_events": int(len(events) - len(ev_idx))}
+    # a session is a run of one key in the (key, time) order: a slice of the sorted events
+    lo = np.flatnonzero(np.r_[True, codes_sorted[1:] != codes_sorted[:-1]]) if len(ev_idx) else np.zeros(0, np.int64)
+    hi = np.r_[lo[1:], len(ev_idx)].astype(np.int64)
+    ev_sorted = ev[ev_idx].astype(np.int32, copy=False)
+    ws = _assemble_slices(ent_codes[ev_idx[lo]], t_sorted[lo], t_sorted[hi - 1] + _ONE_US if len(lo) else lo,
+                          lo, hi, ev_sorted, ent_names, vocab_size, info)
+    ws.meta["group"] = pd.array(uniques[codes_sorted[lo]], dtype="str")
     return ws
+
+
+def session_codes(group: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Codes of session keys in name order (-1 where an event has no key: missing or empty) and the key names.
+
+    A categorical column is coded from its categories, without a string per event.
+    """
+    if isinstance(group.dtype, pd.CategoricalDtype):
+        cat = group.array
+        uniques, inverse = np.unique(np.asarray([str(x) for x in cat.categories], dtype=object),
+                                     return_inverse=True)
+        raw = np.asarray(cat.codes, dtype=np.int64)
+        codes = np.where(raw >= 0, inverse[np.maximum(raw, 0)], -1) if len(inverse) else np.full(len(raw), -1)
+        empty = np.flatnonzero(uniques == "")
+        if len(empty):
+            codes[codes == empty[0]] = -1
+        return codes.astype(np.int64), np.asarray(uniques, dtype=object)
+    grp = group.astype("str")
+    has = (grp.notna() & (grp != "")).to_numpy()
+    codes = np.full(len(grp), -1, dtype=np.int64)
+    keep = np.flatnonzero(has)
+    kept, uniques = pd.factorize(grp.iloc[keep], sort=True)
+    codes[keep] = kept
+    return codes, np.asarray(uniques, dtype=object)
 
 
 def time_windows(
