@@ -89,6 +89,7 @@ def test_windows_from_categorical_events_equal_windows_from_text() -> None:
         _same_windows(W.build_windows(slim, 40, spec), W.build_windows(events, 40, spec))
 
 
+@pytest.mark.filterwarnings("ignore:Series.values returning:DeprecationWarning")  # pyarrow's from_pandas, writing
 def test_event_table_read_as_categoricals_gives_the_same_windows_and_incidents(tmp_path) -> None:
     # reference: the table read back as text by pyarrow, as before
     import pyarrow as pa

@@ -22,7 +22,7 @@ INCIDENT_COLUMNS = ["id", "entity", "start", "end", "kind"]
 
 def times_ns(values: pd.Series | pd.Index | np.ndarray) -> np.ndarray:
     """Timestamps as int64 nanoseconds since the Unix epoch (UTC)."""
-    idx = pd.DatetimeIndex(values)
+    idx = pd.DatetimeIndex(values.array if isinstance(values, pd.Series) else values)
     if idx.tz is None:
         idx = idx.tz_localize("UTC")
     return idx.as_unit("ns").asi8.astype(np.int64, copy=False)
