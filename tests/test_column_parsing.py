@@ -30,6 +30,7 @@ from logtrial.data.mining import DrainMiner
 from logtrial.data.re2_form import extraction_pattern, plain_rows
 from logtrial.data.registry import LineFormat, get_entry, load_registry
 from logtrial.data.shape_keys import ShapeCoder, tokenise_column
+from test_mining import _drain3_run as drain3_reference
 
 REGISTRY = load_registry()
 PLAIN = re.compile(r"[\t\x20-\x7e]*")
@@ -201,21 +202,10 @@ def test_shape_keys_follow_token_codes_and_sync():
 def _drain3_run(lines: list[str], s: dict) -> tuple[list[int], list[str], list[int]]:
     """Reference library: drain3 0.9.11 `add_log_message` over lines; (0-based ids, templates, sizes).
 
-    Built as in tests/test_mining.py: masks replaced by `<*>`, same similarity/depth/max_children/delimiters."""
-    drain3 = pytest.importorskip("drain3", reason="drain3 (reference library) not installed")
-    from drain3.masking import MaskingInstruction
-    from drain3.template_miner_config import TemplateMinerConfig
-
-    config = TemplateMinerConfig()
-    config.masking_instructions = [MaskingInstruction(m, "*") for m in s.get("masks", [])]
-    config.drain_sim_th = s.get("similarity", 0.5)
-    config.drain_depth = s.get("depth", 4)
-    config.drain_max_children = s.get("max_children", 100)
-    config.drain_extra_delimiters = list(s.get("extra_delimiters", []))
-    miner = drain3.TemplateMiner(config=config)
-    ids = [miner.add_log_message(line)["cluster_id"] - 1 for line in lines]
-    clusters = sorted(miner.drain.clusters, key=lambda c: c.cluster_id)
-    return ids, [c.get_template() for c in clusters], [c.size for c in clusters]
+    The same construction as tests/test_mining.py (masks replaced by `<*>`, same settings), as plain lists."""
+    pytest.importorskip("drain3", reason="drain3 (reference library) not installed")
+    ids, templates, sizes = drain3_reference(lines, s)
+    return ids.tolist(), templates, sizes.tolist()
 
 
 @pytest.fixture()
