@@ -53,24 +53,28 @@ class SplitForm:
 
     def read(self, lines: pa.Array, matched: np.ndarray, wanted: Sequence[str]) -> dict[str, pa.Array]:
         """The wanted fields of every line (null where the line did not match), by name."""
-        where = np.flatnonzero(matched)
-        parts = pc.split_pattern(lines.take(pa.array(where)), pattern=" ", max_splits=self.separators)
+        every = bool(matched.all())
+        where = None if every else np.flatnonzero(matched)
+        parts = pc.split_pattern(lines if every else lines.take(pa.array(where)), pattern=" ",
+                                 max_splits=self.separators)
         lengths = np.asarray(pc.list_value_length(parts), dtype=np.int64)
         if len(lengths) and lengths.min() != self.separators + 1:
             raise ValueError("a matching line has fewer parts than the pattern has separators")
-        back = np.full(len(lines), -1, dtype=np.int64)
-        back[where] = np.arange(len(where))
-        spread = pa.array(back, mask=back < 0)
-        out: dict[str, pa.Array] = {}
-        for f in self.fields:
-            if f.name not in wanted:
-                continue
-            value = pc.list_element(parts, f.part)
-            if f.prefix or f.suffix:
-                value = pc.utf8_slice_codeunits(value, start=f.prefix, stop=-f.suffix if f.suffix else 1 << 62)
-            out[f.name] = value.take(spread)
+        spread = None
+        if not every:  # back to one row per line, null where the line did not match
+            back = np.full(len(lines), -1, dtype=np.int64)
+            back[where] = np.arange(len(where))
+            spread = pa.array(back, mask=back < 0)
+
+        def field(part: int, prefix: int = 0, suffix: int = 0) -> pa.Array:
+            value = pc.list_element(parts, part)
+            if prefix or suffix:
+                value = pc.utf8_slice_codeunits(value, start=prefix, stop=-suffix if suffix else 1 << 62)
+            return value if spread is None else value.take(spread)
+
+        out = {f.name: field(f.part, f.prefix, f.suffix) for f in self.fields if f.name in wanted}
         if self.rest in wanted:
-            out[self.rest] = pc.list_element(parts, self.separators).take(spread)
+            out[self.rest] = field(self.separators)
         return out
 
 
