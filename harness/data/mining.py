@@ -30,7 +30,10 @@ Speed comes from the following, none of which changes a result:
   has a version, bumped when a template in it is created or generalised, and
   a routing version is bumped when a new tree child could divert lines that
   used to take a `<*>` branch. Only answers that changed nothing (a plain
-  match) are cached, so replaying one is exactly what Drain would do.
+  match) are cached, so replaying one is exactly what Drain would do. A shape
+  is keyed by the bytes of its int32 token codes; `add_many` gets those keys
+  for whole columns at once (`logtrial.data.shape_keys`), tokenised in the
+  ingest workers.
 - Similarity is one C-level pass, `sum(map(eq, tokens, pattern))`, where the
   pattern holds a space (never part of a token) at `<*>` positions; leaves
   with many templates (lines that are mostly parameters start a new template
@@ -50,6 +53,7 @@ import copy
 import gc
 import operator
 import re
+from array import array
 from contextlib import contextmanager
 from itertools import repeat
 from typing import Any, Callable, Iterator, Protocol, Sequence, runtime_checkable
@@ -211,8 +215,7 @@ class DrainMiner:
 
         self._by_raw: dict[str, list] = {}
         self._by_masked: dict[str, list] = {}
-        self._by_shape: dict[tuple[int, ...], list] = {}
-        self._by_key: dict[bytes, list] = {}  # the same answers by shape keys (`shape_keys`)
+        self._by_shape: dict[bytes, list] = {}  # by shape key: the line's token codes as int32 bytes (`shape_keys`)
 
     # ----------------------------------------------------------- public API
 
@@ -294,7 +297,7 @@ class DrainMiner:
     def frozen_copy(self) -> "DrainMiner":
         """A copy without the answer caches, small enough to ship to other processes for `match_masked_many`."""
         clone = copy.copy(self)
-        clone._by_raw, clone._by_masked, clone._by_shape, clone._by_key = {}, {}, {}, {}
+        clone._by_raw, clone._by_masked, clone._by_shape = {}, {}, {}
         return clone
 
     def delimiters(self) -> list[str]:
@@ -379,7 +382,7 @@ class DrainMiner:
         codes = self._codes
         coder = ShapeCoder(tokens, codes)
         texts = tokens.texts
-        key_get = self._by_key.get
+        key_get = self._by_shape.get
         ids: list[int] = []
         append = ids.append
         n, start, block = len(tokens), 0, _BLOCK_FROM
@@ -395,7 +398,7 @@ class DrainMiner:
                 if key is None:
                     append(self._assign_masked_one(texts[i]))
                 else:
-                    append(self._resolve_key(key, coder.tokens(i)))
+                    append(self._run_drain(key, coder.tokens(i))[0])
                 if len(codes) != n_codes:
                     stop = i + 1
                     block = max(_BLOCK_MIN, block // 4)
@@ -413,16 +416,6 @@ class DrainMiner:
         if entry[1].version == entry[2] and entry[3] == self._routing_version:
             return entry[0]
         return self._resolve(entry)
-
-    def _resolve_key(self, key: bytes, tokens: tuple[str, ...]) -> int:
-        """Run Drain for a line's tokens; remember the answer under its shape key if nothing changed."""
-        cid, changed = self._assign_tokens(tokens)
-        if not changed:
-            leaf = self._leaves[cid]
-            if len(self._by_key) >= _CACHE_LIMIT:
-                self._by_key.clear()
-            self._by_key[key] = [cid, leaf, leaf.version, self._routing_version]
-        return cid
 
     def _assign_content(self, content: str) -> int:
         """Return the template id for one content, using the caches."""
@@ -453,24 +446,27 @@ class DrainMiner:
         return entry
 
     def _resolve(self, entry: list) -> int:
-        """Run Drain for an entry's tokens; remember the answer if nothing changed."""
+        """Run Drain for an entry's tokens (or reuse the answer for their shape); remember it if nothing changed."""
         tokens = entry[4]
-        shape = tuple(map(self._codes.get, tokens, repeat(_UNKNOWN_CODE, len(tokens))))
+        shape = array("i", map(self._codes.get, tokens, repeat(_UNKNOWN_CODE, len(tokens)))).tobytes()
         known = self._by_shape.get(shape)
-        if known is not None and known[1].version == known[2] and known[3] == self._routing_version:
-            entry[:4] = known
-            return known[0]
-        cid, changed = self._assign_tokens(tokens)
-        if not changed:
-            leaf = self._leaves[cid]
-            entry[:4] = cid, leaf, leaf.version, self._routing_version
+        if known is None or known[1].version != known[2] or known[3] != self._routing_version:
+            cid, known = self._run_drain(shape, tokens)
             if known is None:
-                if len(self._by_shape) >= _CACHE_LIMIT:
-                    self._by_shape.clear()
-                self._by_shape[shape] = entry[:4]
-            else:
-                known[:] = entry[:4]
-        return cid
+                return cid
+        entry[:4] = known
+        return known[0]
+
+    def _run_drain(self, shape: bytes, tokens: tuple[str, ...]) -> tuple[int, list | None]:
+        """Run Drain for a line; if nothing changed, remember (and return) the answer under the line's shape key."""
+        cid, changed = self._assign_tokens(tokens)
+        if changed:
+            return cid, None
+        leaf = self._leaves[cid]
+        if len(self._by_shape) >= _CACHE_LIMIT:
+            self._by_shape.clear()
+        record = self._by_shape[shape] = [cid, leaf, leaf.version, self._routing_version]
+        return cid, record
 
     # --------------------------------------------------------------- Drain
 

@@ -18,8 +18,6 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-NOT_PLAIN = r"[^\t\x20-\x7e]"
-
 # per byte value: not printable ASCII and not tab
 _NOT_PLAIN_BYTE = np.ones(256, dtype=bool)
 _NOT_PLAIN_BYTE[0x20:0x7F] = False
