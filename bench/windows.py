@@ -55,7 +55,8 @@ import json, resource, sys, time
 import pandas as pd
 import gc
 import pyarrow as pa
-from logtrial.data.ingest import TEXT_COLUMNS, read_events, window_events
+from logtrial.data.ingest import TEXT_COLUMNS, read_events
+from logtrial.windowing.windows import window_events
 from logtrial.windowing.windows import count_windows, session_windows, time_windows
 
 def status(key):

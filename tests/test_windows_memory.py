@@ -78,7 +78,7 @@ def test_slice_bounds_packed_key_equals_dense_ranks() -> None:
 
 def test_windows_from_categorical_events_equal_windows_from_text() -> None:
     # reference: the same windows built from the plain text table (pandas' own factorize of strings)
-    from logtrial.data.ingest import window_events
+    from logtrial.windowing.windows import window_events
 
     events = _events(6_000, 1)
     slim = window_events(events)
@@ -94,8 +94,9 @@ def test_event_table_read_as_categoricals_gives_the_same_windows_and_incidents(t
     # reference: the table read back as text by pyarrow, as before
     import pyarrow as pa
     import pyarrow.parquet as pq
-    from logtrial.data.ingest import TEXT_COLUMNS, read_events, window_events
+    from logtrial.data.ingest import TEXT_COLUMNS, read_events
     from logtrial.labels.incidents import incidents_from_sessions, incidents_from_tags
+    from logtrial.windowing.windows import window_events
 
     events = _events(4_000, 2)
     path = tmp_path / "events.parquet"

@@ -493,24 +493,7 @@ def read_events(path: Path, columns: list[str] | None = None, categories: Sequen
     return frame
 
 
-WINDOW_COLUMNS = ["ts", "entity", "event", "group"]
 TEXT_COLUMNS = ["entity", "group", "tag"]  # few distinct values each: read as categoricals, a code per event
-
-
-def window_events(events: pd.DataFrame, keep_group: bool = True) -> pd.DataFrame:
-    """The columns windows are built from (the session key only when kept); text as categoricals with the
-    narrowest codes (a byte per event for up to 127 entities)."""
-    wanted = [c for c in WINDOW_COLUMNS if c in events.columns and (keep_group or c != "group")]
-    slim = events[wanted].copy()
-    for name in ("entity", "group"):
-        if name in slim:
-            col = slim[name]
-            if not isinstance(col.dtype, pd.CategoricalDtype):
-                col = col.fillna("") if name == "entity" else col
-                slim[name] = col.astype("category")
-            else:  # codes read from Arrow are int32 whatever the number of categories
-                slim[name] = pd.Categorical.from_codes(col.cat.codes.to_numpy(), dtype=col.dtype)
-    return slim
 
 
 def dataset_folder(entry, home: Path, mirror: Path | None = None, progress: bool = False) -> Path:

@@ -18,7 +18,7 @@ from typing import Iterable
 import numpy as np
 import pandas as pd
 from logtrial.data.acquire import log_files
-from logtrial.data.ingest import TEXT_COLUMNS, dataset_folder, ingest_files, read_events, window_events
+from logtrial.data.ingest import TEXT_COLUMNS, dataset_folder, ingest_files, read_events
 from logtrial.data.registry import SessionEntry, get_entry, load_registry
 from logtrial.detectors.base import Detector
 from logtrial.detectors.registry import create
@@ -35,7 +35,7 @@ from logtrial.running.walk_forward import combine_folds, figures_by_age, fold_sp
 from logtrial.windowing.sessions import load_entry_sessions, session_events
 from logtrial.windowing.splits import check_no_leakage, chronological_split, random_split
 from logtrial.windowing.vocabulary import fit_vocabulary, remap_windows
-from logtrial.windowing.windows import WindowSet, build_windows, label_windows
+from logtrial.windowing.windows import WindowSet, build_windows, label_windows, window_events
 
 RESULT_VERSION = 1
 

@@ -192,76 +192,31 @@ def _check_vocab(ev: np.ndarray, vocab_size: int) -> None:
         raise DataError(f"events.event: ids must lie in [0, {vocab_size}), got range [{ev.min()}, {ev.max()}]")
 
 
-def _assemble(
-    key_codes: np.ndarray,
-    win_key: np.ndarray,
-    ev_idx: np.ndarray,
-    events_ev: np.ndarray,
-    starts: np.ndarray | None,
-    ends: np.ndarray | None,
-    ts: np.ndarray,
-    vocab_size: int,
-    info: dict,
-    entity: tuple[np.ndarray, np.ndarray],
-    extra_meta: dict[str, tuple[np.ndarray, np.ndarray]] | None = None,
-) -> WindowSet:
-    """Turn (window key, event index) pairs sorted by window into a WindowSet.
-
-    ``win_key`` is a per-pair secondary key (window number within the key code);
-    pairs must already be sorted by (key_codes, win_key, time). ``entity`` and each
-    ``extra_meta`` value are (unique names, per-pair codes): a window takes the name
-    of its first pair. ``starts``/``ends`` None means first event time / last event
-    time + 1 µs.
-    """
-    m = len(ev_idx)
-    if m == 0:
-        meta = pd.DataFrame(
-            {
-                "id": np.zeros(0, np.int64),
-                "entity": pd.array([], dtype="str"),
-                "start": from_ns(np.zeros(0, np.int64)),
-                "end": from_ns(np.zeros(0, np.int64)),
-                "n_events": np.zeros(0, np.int64),
-            }
-        )
-        for name in extra_meta or {}:
-            meta[name] = pd.array([], dtype="str")
-        return WindowSet(meta, sp.csr_matrix((0, vocab_size), dtype=np.int32), np.zeros(0, np.int32), np.zeros(1, np.int64), vocab_size, info=info)
-    new = np.ones(m, dtype=bool)
-    new[1:] = (key_codes[1:] != key_codes[:-1]) | (win_key[1:] != win_key[:-1])
-    first = np.flatnonzero(new)
-    n_win = len(first)
-    offsets = np.r_[first, m].astype(np.int64)
-    n_events = np.diff(offsets)
-    values = events_ev[ev_idx].astype(np.int32, copy=False)
-    # windows are contiguous runs of pairs: their sequences are the CSR rows before summing duplicates
-    counts = sp.csr_matrix((np.ones(m, dtype=np.int32), values.copy(), offsets.copy()), shape=(n_win, vocab_size))
-    counts.sum_duplicates()
-    if starts is None:
-        start_ns = ts[ev_idx[first]]
-        end_ns = ts[ev_idx[offsets[1:] - 1]] + _ONE_US
-    else:
-        start_ns, end_ns = starts[first], ends[first]
-    meta = pd.DataFrame(
-        {
-            "id": np.arange(n_win, dtype=np.int64),
-            "entity": pd.array(entity[0][entity[1][first]], dtype="str"),
-            "start": from_ns(start_ns),
-            "end": from_ns(end_ns),
-            "n_events": n_events.astype(np.int64),
-        }
-    )
-    for name, (names, codes) in (extra_meta or {}).items():
-        meta[name] = pd.array(names[codes[first]], dtype="str")
-    return WindowSet(meta, counts, values, offsets, vocab_size, info=info)
-
-
 def _entity_sorted(events: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Entity codes, entity names per event, ns times, and the (entity, time) stable order."""
     codes, names = entity_codes(events["entity"])
     ts = times_ns(events["ts"])
     order = np.lexsort((ts, codes))
     return codes, names, ts, order
+
+
+WINDOW_COLUMNS = ["ts", "entity", "event", "group"]
+
+
+def window_events(events: pd.DataFrame, keep_group: bool = True) -> pd.DataFrame:
+    """The columns windows are built from (the session key only when kept); text as categoricals with the
+    narrowest codes (a byte per event for up to 127 entities)."""
+    wanted = [c for c in WINDOW_COLUMNS if c in events.columns and (keep_group or c != "group")]
+    slim = events[wanted].copy()
+    for name in ("entity", "group"):
+        if name in slim:
+            col = slim[name]
+            if not isinstance(col.dtype, pd.CategoricalDtype):
+                col = col.fillna("") if name == "entity" else col
+                slim[name] = col.astype("category")
+            else:  # codes read from Arrow are int32 whatever the number of categories
+                slim[name] = pd.Categorical.from_codes(col.cat.codes.to_numpy(), dtype=col.dtype)
+    return slim
 
 
 def entity_codes(entity: pd.Series) -> tuple[np.ndarray, np.ndarray]:
@@ -508,8 +463,9 @@ def count_windows(events: pd.DataFrame, vocab_size: int, n: int, step: int | Non
     c = codes[order]
     m = len(order)
     if m == 0:
+        empty = np.zeros(0, np.int64)
         info = {"kind": "count", "n": n, "step": step}
-        return _assemble(c, c, order, ev, None, None, ts, vocab_size, info, entity=(names, c))
+        return _assemble_slices(empty, empty, empty, empty, empty, ev[:0].astype(np.int32), names, vocab_size, info)
     # each window is a slice of the entity's run in the (entity, time) order
     first = np.flatnonzero(np.r_[True, c[1:] != c[:-1]])
     cnt = np.diff(np.r_[first, m])
