@@ -107,14 +107,6 @@ def _unknown_field(where: str, field_name: str, allowed: Any) -> ConfigError:
     return ConfigError(f"{where}{field_name}: unknown field (allowed: {', '.join(allowed)}).{hint}")
 
 
-def _text_duration(value: Any, where: str) -> None:
-    """Refuse a duration without a unit (`60` could be seconds, minutes or hours)."""
-    if isinstance(value, bool) or isinstance(value, (int, float)) or (
-            isinstance(value, str) and value.strip().lstrip("+-").replace(".", "", 1).isdigit()):
-        raise ConfigError(f"{where}: {value!r} has no unit; write a duration with its unit such as '60s', "
-                          "'60min' or '1h'")
-
-
 def _string(doc: dict, key: str, where: str, required: bool = False) -> str | None:
     """A field that must be a piece of text (a name or a path), not a list or a number."""
     value = doc.get(key)
@@ -156,7 +148,7 @@ def _need(doc: dict, key: str, where: str) -> Any:
 
 
 def _canonical_task(raw: Any, where: str) -> dict:
-    from logtrial.windowing.windows import check_task
+    from logtrial.windowing.windows import check_task, require_unit
 
     if isinstance(raw, str):
         raw = {"name": raw}
@@ -170,7 +162,7 @@ def _canonical_task(raw: Any, where: str) -> dict:
         raise ConfigError(f"{where}.horizon: not used by the detect task (it scores the windows that overlap a "
                           f"failure); remove it, or use {{name: predict, horizon: {raw['horizon']}}}")
     if raw.get("horizon") is not None:
-        _text_duration(raw["horizon"], f"{where}.horizon")
+        require_unit(raw["horizon"], f"{where}.horizon")
     try:
         horizon = check_task(name, raw.get("horizon"))
     except ConfigError as exc:
@@ -201,8 +193,7 @@ def _canonical_split(raw: Any, where: str) -> dict:
     if raw.get("embargo") is not None:
         from logtrial.windowing.windows import parse_duration
 
-        _text_duration(raw["embargo"], f"{where}.embargo")
-        embargo = parse_duration(raw["embargo"], f"{where}.embargo")
+        embargo = parse_duration(raw["embargo"], f"{where}.embargo", unit_required=True)
         if embargo < pd.Timedelta(0):
             raise ConfigError(f"{where}.embargo: must not be negative, got {raw['embargo']!r}")
         out["embargo"] = str(embargo)
@@ -219,8 +210,7 @@ def _canonical_scoring(raw: Any, where: str) -> dict:
     if unknown:
         raise _unknown_field(f"{where}.", unknown[0], SCORING_DEFAULTS)
     out = {**SCORING_DEFAULTS, **raw}
-    _text_duration(out["cooldown"], f"{where}.cooldown")
-    cooldown = parse_duration(out["cooldown"], f"{where}.cooldown")
+    cooldown = parse_duration(out["cooldown"], f"{where}.cooldown", unit_required=True)
     if cooldown < pd.Timedelta(0):
         raise ConfigError(f"{where}.cooldown: must not be negative, got {out['cooldown']!r}")
     out["cooldown"] = str(cooldown)
@@ -413,14 +403,14 @@ def _expand(doc: dict, origin: str, path: Path | None, output: str | Path | None
             fingerprints[d] = entry_fingerprint(get_entry(d, registry))
         except ConfigError as exc:
             raise ConfigError(f"datasets[{i}]: {exc}") from None
-    from logtrial.windowing.windows import load_window_spec
+    from logtrial.windowing.windows import load_window_spec, require_unit
 
     raw_windows = _as_list(_need(doc, "windows", origin))
     for i, w in enumerate(raw_windows):
         if isinstance(w, dict) and w.get("kind") == "time":
             for key in ("size", "step"):
                 if w.get(key) is not None:
-                    _text_duration(w[key], f"windows[{i}].{key}")
+                    require_unit(w[key], f"windows[{i}].{key}")
     windows = [load_window_spec(w, f"windows[{i}]").as_dict() for i, w in enumerate(raw_windows)]
     _no_repeats(windows, "windows", window_label)
     if "task" in doc and "tasks" in doc:

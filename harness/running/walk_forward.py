@@ -43,7 +43,7 @@ def canonical_walk_forward(raw: Any, where: str = "evaluation") -> dict:
     for key in ("train", "validation", "test", "step"):
         if raw.get(key) is None:
             raise ConfigError(f"{where}.{key}: is required (a duration such as 28d)")
-        value = parse_duration(raw[key], f"{where}.{key}")
+        value = parse_duration(raw[key], f"{where}.{key}", unit_required=True)
         if value <= pd.Timedelta(0):
             raise ConfigError(f"{where}.{key}: must be a positive duration, got {raw[key]!r}")
         out[key] = str(value)
@@ -51,13 +51,13 @@ def canonical_walk_forward(raw: Any, where: str = "evaluation") -> dict:
     if window not in ("expanding", "sliding"):
         raise ConfigError(f"{where}.window: must be expanding or sliding, got {window!r}")
     out["window"] = window
-    age_bin = parse_duration(raw.get("age_bin", "7d"), f"{where}.age_bin")
+    age_bin = parse_duration(raw.get("age_bin", "7d"), f"{where}.age_bin", unit_required=True)
     if not pd.Timedelta(0) < age_bin <= pd.Timedelta(out["test"]):
         raise ConfigError(f"{where}.age_bin: must be positive and at most the test span ({out['test']}), "
                           f"got {raw.get('age_bin')!r}")
     out["age_bin"] = str(age_bin)
     if raw.get("embargo") is not None:
-        out["embargo"] = str(parse_duration(raw["embargo"], f"{where}.embargo"))
+        out["embargo"] = str(parse_duration(raw["embargo"], f"{where}.embargo", unit_required=True))
     tol = raw.get("tolerance", DEFAULT_TOLERANCE)
     if isinstance(tol, bool) or not isinstance(tol, (int, float)) or not 0 < tol < 1:
         raise ConfigError(f"{where}.tolerance: expected a share between 0 and 1 (e.g. 0.1), got {tol!r}")

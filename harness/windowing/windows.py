@@ -108,8 +108,19 @@ class WindowSpec:
         return out
 
 
-def parse_duration(value: object, field_name: str) -> pd.Timedelta:
-    """A duration from a string ('1h', '2 days'), a Timedelta, or a number of seconds; ConfigError naming the field."""
+def require_unit(value: object, field_name: str) -> None:
+    """Refuse a duration without a unit (`60` could be seconds, minutes or hours); ConfigError naming the field."""
+    if isinstance(value, bool) or isinstance(value, (int, float)) or (
+            isinstance(value, str) and value.strip().lstrip("+-").replace(".", "", 1).isdigit()):
+        raise ConfigError(f"{field_name}: {value!r} has no unit; write a duration with its unit such as '60s', "
+                          "'60min' or '1h'")
+
+
+def parse_duration(value: object, field_name: str, unit_required: bool = False) -> pd.Timedelta:
+    """A duration from a string ('1h', '2 days'), a Timedelta, or (unless ``unit_required``, as for anything a
+    user writes in an experiment file) a number of seconds; ConfigError naming the field."""
+    if unit_required:
+        require_unit(value, field_name)
     if isinstance(value, bool) or value is None:
         raise ConfigError(f"{field_name}: expected a duration such as '1h', got {value!r}")
     try:
