@@ -132,14 +132,20 @@ def test_movement_sentence_names_shared_first_places() -> None:
     assert movement_sentence(same) == "first place stays with a from clean to noisy labels."
 
 
-def test_a_detector_far_over_its_budget_on_test_is_flagged_and_an_alternative_named() -> None:
-    # worked example: budget 5/week/100; a raises 40 on test (8x), d stays at 3 (0.6x)
+def test_a_detector_far_over_its_budget_on_test_ranks_after_those_within_it() -> None:
+    # worked example: budget 5/week/100; a catches 5/10 but raises 40 on test (8x), d catches 3/10 at 3 (0.6x)
     recs = [_record("a", 1, "1111100000", 40.0, [5, 6, 7, 8, 9]), _record("d", 1, "1110000000", 3.0, [1, 1, 1])]
     b = _board("s", "clean", "5", recs, ["a", "d"])
-    assert list(over_budget(b)) == [True, False]
+    assert list(b.rows["detector"]) == ["d", "a"] and list(b.rows["rank"]) == [1, 2]
+    assert list(over_budget(b)) == [False, True]
     table = board_table(b)
-    assert list(table["test alarms vs budget"]) == ["8.0x OVER", "0.6x"]
+    assert list(table["test alarms vs budget"]) == ["0.6x", "8.0x OVER"]
     text = sentence(b, recs)
-    assert "pick a" in text and "8x the budget" in text and "best within 2x the budget on test is d (3/10)" in text
+    assert "pick d" in text and "Caution" not in text
+    # with the headline threshold policy there is no budget to keep: failures caught decide
+    assert list(_board("s", "clean", "policy", recs, ["a", "d"]).rows["detector"]) == ["a", "d"]
+    # when nobody kept to the budget, the sentence says so
+    alone = _board("s", "clean", "5", recs[:1], ["a"])
+    assert "no detector stayed within 2x the budget" in sentence(alone, recs) and "8.0x it" in sentence(alone, recs)
     within = _board("s", "clean", "5", [_record("d", 1, "1110000000", 3.0, [1, 1, 1])], ["d"])
     assert "Caution" not in sentence(within, recs)

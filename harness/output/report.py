@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import base64
 import html
-import io
 import math
 import re
 from pathlib import Path
@@ -15,6 +14,7 @@ from logtrial.errors import DataError
 from logtrial.evaluation.paired import FEW_FAILURES
 from logtrial.output.decision import (
     METHOD,
+    OVERRUN,
     Board,
     board_table,
     decision_boards,
@@ -24,6 +24,7 @@ from logtrial.output.decision import (
     point_title,
     sentence,
 )
+from logtrial.output.png import png_bytes
 from logtrial.output.tolerance import tolerance_section
 from logtrial.running.experiment import vocabulary_label
 
@@ -154,15 +155,6 @@ def to_text(table: pd.DataFrame, max_width: int = 160) -> str:
     return "\n".join([head, "  ".join("-" * w for w in widths), *body])
 
 
-def _png(fig) -> bytes:
-    import matplotlib.pyplot as plt
-
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=110)
-    plt.close(fig)
-    return buf.getvalue()
-
-
 def order_like(summary: pd.DataFrame, detectors: list[str], noises: list[str]) -> pd.DataFrame:
     """Rows in the experiment's order: by detector as listed, then by noise level as listed."""
     d_rank = {d: i for i, d in enumerate(detectors)}
@@ -177,7 +169,9 @@ def decision_markdown(boards: list[Board], records: list[dict]) -> list[str]:
     if not boards:
         return ["## Decision", "", "No run recorded per-failure outcomes; re-run the experiment to rank detectors.", ""]
     out = ["## Decision: which detector at which alarm budget", "",
-           f"Ranked by failures caught on the test split, ties by median lead time. Thresholds are chosen on the "
+           f"At a budget, detectors whose test alarms stayed within {OVERRUN:g}x of it come first (the others are "
+           f"marked OVER); then ranked by failures caught on the test split, ties by median lead time. "
+           f"Thresholds are chosen on the "
            f"validation split for each budget (alarms per week per 100 entities). Paired comparison: {METHOD}. "
            f"'same' = cannot be told apart from the best (p >= 0.05). With several seeds a failure counts as "
            f"caught when at least half the seeds catch it.", ""]
@@ -279,7 +273,7 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
             point = str(max((b.point for b in boards if b.point != "policy"), key=float, default="policy"))
             figs["lead_times.png"] = lead_time_figure(in_setting, first_noise, det_order, first.horizon_h, point)
         figs["pr_curves.png"] = pr_figure(in_setting, store, first_noise, det_order, colours)
-    pngs = {name: _png(f) for name, f in figs.items()}
+    pngs = {name: png_bytes(f) for name, f in figs.items()}
     noise_section = tolerance_section(records, out, tolerance, detectors)  # empty unless the noise is swept
     for name, blob in pngs.items():
         (out / name).write_bytes(blob)

@@ -21,7 +21,6 @@ from __future__ import annotations
 
 import base64
 import html
-import io
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -29,6 +28,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from logtrial.errors import ConfigError
+from logtrial.output.png import png_bytes
 
 # Shares of failures: the figures a binomial resample over failures applies to.
 SHARE_METRICS = {"recall_predicted": "failures predicted", "recall_detected_or_predicted": "failures caught"}
@@ -404,15 +404,6 @@ def _markdown(table: pd.DataFrame) -> str:
     return "\n".join(lines + ["| " + " | ".join(str(v) for v in row) + " |" for row in table.itertuples(index=False)])
 
 
-def _png(fig) -> bytes:
-    import matplotlib.pyplot as plt
-
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=110, bbox_inches="tight")
-    plt.close(fig)
-    return buf.getvalue()
-
-
 def tolerance_section(records: list[dict], output: Path, tolerance: dict | None = None,
                       order: list[str] | None = None) -> Section:
     """The noise-tolerance section of a report (writes tolerance.csv and its PNGs); empty without a sweep."""
@@ -443,8 +434,8 @@ def tolerance_section(records: list[dict], output: Path, tolerance: dict | None 
         text = table_text(table, title)
         said = sentences(table, settings, title)
         tag = "" if len(parts) == 1 else f"_{i + 1}"
-        names = {f"noise_heatmap{tag}.png": _png(heat_map(curves, title)),
-                 f"noise_curves{tag}.png": _png(degradation_curves(curves, settings, title))}
+        names = {f"noise_heatmap{tag}.png": png_bytes(heat_map(curves, title)),
+                 f"noise_curves{tag}.png": png_bytes(degradation_curves(curves, settings, title))}
         pngs.update(names)
         size = f"{context}: " if len(parts) > 1 else ""
         size += f"{rows['seed'].nunique()} seeds, about {int(rows['failures'].median())} failures per run."
