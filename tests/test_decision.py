@@ -142,6 +142,7 @@ def test_a_detector_far_over_its_budget_on_test_ranks_after_those_within_it() ->
     assert list(table["test alarms vs budget"]) == ["0.6x", "8.0x OVER"]
     text = sentence(b, recs)
     assert "pick d" in text and "Caution" not in text
+    assert "a cannot be told apart" not in text  # the over-budget one is not offered as an equal alternative
     # with the headline threshold policy there is no budget to keep: failures caught decide
     assert list(_board("s", "clean", "policy", recs, ["a", "d"]).rows["detector"]) == ["a", "d"]
     # when nobody kept to the budget, the sentence says so

@@ -223,7 +223,9 @@ def over_budget(board: Board) -> pd.Series:
 def sentence(board: Board, records: list[dict]) -> str:
     """One plain sentence: what to pick at this operating point and what it costs."""
     top = board.rows.iloc[0]
-    ties = [d for d, s in zip(board.rows["detector"].iloc[1:], board.rows["same_as_best"].iloc[1:]) if s]
+    kept = ~over_budget(board)  # a detector that overshot the budget is no alternative at it
+    ties = [d for d, s, k in zip(board.rows["detector"].iloc[1:], board.rows["same_as_best"].iloc[1:], kept.iloc[1:])
+            if s and k]
     verb = "predicts" if board.task == "predict" else "catches"
     lead = f", median {top['lead_h']:.1f} h ahead" if board.task == "predict" and not math.isnan(top["lead_h"]) else ""
     where = f"At {point_title(board, records)} ({board.noise} labels)"
@@ -232,7 +234,8 @@ def sentence(board: Board, records: list[dict]) -> str:
     cost = (f"it costs {top['alarms_test']:.1f} alarms per week per 100 entities on test and "
             f"{_fmt(top['false_per_caught'])} false alarms per failure")
     tie = (f"; {', '.join(ties)} cannot be told apart from it on {board.n} failures" if ties
-           else f"; it is ahead of every other detector on {board.n} failures")
+           else f"; it is ahead of every other detector{'' if board.point == 'policy' else ' that kept to the budget'} "
+                f"on {board.n} failures")
     text = f"{where}: pick {top['detector']}, which {verb} {top['k']}/{top['n']} failures{lead}; {cost}{tie}."
     if bool(over_budget(board).iloc[0]):  # the rows are ranked within-budget first: then none kept to it
         text += (f" Caution: no detector stayed within {OVERRUN:g}x the budget on test; this one raised "
