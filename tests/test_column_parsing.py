@@ -577,3 +577,20 @@ def test_decode_range_column_equals_line_path(tmp_path, blob, lines, bad):
             assert isinstance(col.lines, pa.Array) == (not bad)  # valid UTF-8 stays a column
     ref = decode_range(ByteRange(alone, 0, len(blob)), "utf-8", False)
     assert (ref.lines, ref.bad_lines) == (lines, bad)
+
+
+def test_an_empty_extra_delimiter_goes_to_python_on_the_column_path() -> None:
+    """Reference: DrainMiner.add line by line (Python's str.replace("", " ") puts a space between characters)."""
+    lines = [f"ab {i % 7}" for i in range(300)]
+    bulk, one = DrainMiner(masks=[r"\d+"], extra_delimiters=[""]), DrainMiner(masks=[r"\d+"], extra_delimiters=[""])
+    assert bulk.add_many(lines).tolist() == [one.add(c) for c in lines]
+    assert bulk.templates() == one.templates()
+
+
+def test_a_posix_class_mask_is_not_handed_to_re2() -> None:
+    """Reference: Python's re.sub, which reads `[[:digit:]]` as a set of characters, not as a class of digits."""
+    from logtrial.data.masking import mask_contents
+
+    mask = r"[[:digit:]]+"
+    texts = ["a12 b:d]", "x:]] 7"]
+    assert mask_contents(texts, [mask]).to_pylist() == [re.sub(mask, "<*>", t) for t in texts]

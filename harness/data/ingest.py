@@ -13,7 +13,7 @@ import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Iterator, Sequence
+from typing import Generator, Sequence
 
 import numpy as np
 import pandas as pd
@@ -360,12 +360,12 @@ def _write_table(
             raise ConfigError("engine dask: needs the built-in drain miner (templates are matched on the cluster)")
         learn = learn_count(len(jobs))
 
-        def staged() -> Iterator[RangeResult]:
+        def staged() -> Generator[RangeResult, None, None]:
             yield from ordered_map(parse_range, jobs[:learn], 1)
             # the learnt templates are frozen only now: every learn range has been mined by the loop below
             yield from dask_map(jobs[learn:], miner.frozen_copy(), scheduler, workers)
 
-        results: Iterator[RangeResult] = staged()
+        results: Generator[RangeResult, None, None] = staged()
     else:
         results = ordered_map(parse_range, jobs, workers)
     writer = _EventWriter(out / "events.parquet")
@@ -421,6 +421,7 @@ def _write_table(
                     counters.rows += len(chunk)
                 bar.update(res.n_bytes)
         finally:
+            results.close()  # on an error, stop the worker pool (or cluster) now, not when the frame is collected
             writer.close()
             bar.close()
 

@@ -8,7 +8,7 @@ from collections import deque
 from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass, field
 from itertools import islice
-from typing import Callable, Iterable, Iterator, TypeVar
+from typing import Callable, Generator, Iterable, TypeVar
 
 import numpy as np
 import pyarrow as pa
@@ -75,7 +75,7 @@ def default_workers() -> int:
         return max(1, os.cpu_count() or 1)
 
 
-def ordered_map(fn: Callable[[J], R], jobs: Iterable[J], workers: int, ahead: int = 2) -> Iterator[R]:
+def ordered_map(fn: Callable[[J], R], jobs: Iterable[J], workers: int, ahead: int = 2) -> Generator[R, None, None]:
     """fn over jobs, in order; with workers > 1 in that many processes, at most ``ahead`` jobs per worker in flight.
 
     The bound keeps memory flat when the consumer (the miner) is slower than the workers.

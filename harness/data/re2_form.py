@@ -72,7 +72,8 @@ def _same_reading(pattern: str) -> bool:
         flags = re.compile(pattern).flags
     except re.error:
         return False
-    return "{," not in pattern and not flags & (re.VERBOSE | re.MULTILINE | re.DOTALL)
+    # `[:digit:]` inside a set is a POSIX class to RE2 but plain characters to Python
+    return "{," not in pattern and "[:" not in pattern and not flags & (re.VERBOSE | re.MULTILINE | re.DOTALL)
 
 
 @lru_cache(maxsize=256)

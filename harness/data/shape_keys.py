@@ -50,8 +50,9 @@ class TokenColumn:
 def tokenise_column(contents: pa.Array, delimiters: Sequence[str]) -> TokenColumn:
     """Split every content into tokens as the miner does; number the distinct tokens."""
     python_rows = ~plain_rows(contents)
-    if any(not d for d in delimiters):  # Python puts a space between every character; leave it to Python
+    if any(not d for d in delimiters):  # Python puts a space between every character; leave all to Python
         python_rows[:] = True
+        delimiters = ()  # (and Arrow would grow such a replacement without bound)
     arr = pc.ascii_trim_whitespace(contents)
     if delimiters:
         for delimiter in delimiters:
@@ -72,7 +73,8 @@ def tokenise_column(contents: pa.Array, delimiters: Sequence[str]) -> TokenColum
         offsets = np.concatenate([[0], np.cumsum(counts)]).astype(np.int32)
     if contents.null_count:
         python_rows |= np.asarray(contents.is_null(), dtype=bool)
-    texts = {i: contents[i].as_py() for i in np.flatnonzero(python_rows).tolist()}
+    rows = np.flatnonzero(python_rows)
+    texts = dict(zip(rows.tolist(), contents.take(pa.array(rows)).to_pylist())) if len(rows) else {}
     if len(flat) == 0:
         return TokenColumn(offsets, np.zeros(0, dtype=np.int32), pa.array([], type=pa.string()), python_rows, texts)
     encoded = flat.dictionary_encode()
