@@ -587,6 +587,7 @@ def test_an_empty_extra_delimiter_goes_to_python_on_the_column_path() -> None:
     assert bulk.templates() == one.templates()
 
 
+@pytest.mark.filterwarnings("ignore:Possible nested set:FutureWarning")  # Python's own note on `[[`
 def test_a_posix_class_mask_is_not_handed_to_re2() -> None:
     """Reference: Python's re.sub, which reads `[[:digit:]]` as a set of characters, not as a class of digits."""
     from logtrial.data.masking import mask_contents

@@ -20,6 +20,16 @@ KINDS = ("failure", "other")
 INCIDENT_COLUMNS = ["id", "entity", "start", "end", "kind"]
 
 
+def text_values(column: pd.Series) -> np.ndarray:
+    """A text column as an object array, a missing value as "" (a categorical is expanded from its categories,
+    without building a string per row)."""
+    if isinstance(column.dtype, pd.CategoricalDtype):
+        names = np.asarray([str(c) for c in column.cat.categories] + [""], dtype=object)
+        codes = column.cat.codes.to_numpy()
+        return names[np.where(codes < 0, len(names) - 1, codes)]
+    return column.fillna("").astype(str).to_numpy(dtype=object)
+
+
 def times_ns(values: pd.Series | pd.Index | np.ndarray) -> np.ndarray:
     """Timestamps as int64 nanoseconds since the Unix epoch (UTC)."""
     idx = pd.DatetimeIndex(values.array if isinstance(values, pd.Series) else values)
@@ -78,13 +88,13 @@ def incidents_from_tags(
     gap = pd.Timedelta(gap)
     if pd.isna(gap) or gap < pd.Timedelta(0):
         raise ConfigError(f"labels.gap: must be a non-negative duration, got {gap}")
-    tags = events["tag"].astype("str").fillna("")
-    alert = tags.to_numpy() != ""
+    tags = text_values(events["tag"])
+    alert = tags != ""
     sub = events.loc[alert]
     if len(sub) == 0:
         return empty_incidents().assign(mode=pd.array([], dtype="str"))
-    sub_tags = tags.to_numpy()[alert]
-    ent = sub["entity"].astype("str").fillna("").to_numpy(dtype=object)
+    sub_tags = tags[alert]
+    ent = text_values(sub["entity"])
     ts = times_ns(sub["ts"])
     ent_codes, ent_uniques = pd.factorize(ent, sort=True)
     order = np.lexsort((ts, ent_codes))
@@ -132,14 +142,13 @@ def incidents_from_sessions(
     if kind not in KINDS:
         raise ConfigError(f"labels.kind: must be one of {list(KINDS)}, got {kind!r}")
     wanted = pd.Index(pd.unique(np.asarray(list(anomalous_groups), dtype=object))).astype(str)
-    grp = events["group"]
-    keep = grp.notna().to_numpy() & grp.astype(str).isin(wanted).to_numpy()
+    keep = events["group"].isin(wanted).to_numpy()  # a missing key is in no list
     sub = events.loc[keep]
     if len(sub) == 0:
         return empty_incidents().assign(group=pd.array([], dtype="str"))
-    g = sub["group"].astype(str).to_numpy(dtype=object)
+    g = text_values(sub["group"])
     ts = times_ns(sub["ts"])
-    ent = sub["entity"].astype("str").fillna("").to_numpy(dtype=object)
+    ent = text_values(sub["entity"])
     codes, uniques = pd.factorize(g, sort=True)
     order = np.lexsort((ts, codes))
     codes, ts, ent = codes[order], ts[order], ent[order]

@@ -116,6 +116,11 @@ class Runner:
                                                res.manifest["key"], templates)
         return self._datasets[name]
 
+    def walk_forward_base(self, run: RunConfig) -> Prepared:
+        """The windows (in template ids) all folds of a walk-forward run share; each fold fits its own vocabulary."""
+        return self.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]},
+                                     vocabulary={"kind": "templates"}))
+
     def prepared(self, run: RunConfig) -> Prepared:
         """Windows (in the run's vocabulary), truth labels and the split for a run's dataset, windowing, task and split."""
         # A random split draws with the run's seed, so it is shared only between runs with that seed.
@@ -124,8 +129,7 @@ class Runner:
         if key not in self._prepared and is_walk_forward(run.split):
             # One fold of a walk-forward evaluation: the shared windows (in template ids), this fold's split,
             # and a vocabulary fitted on this fold's training windows only.
-            base = self.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]},
-                                         vocabulary={"kind": "templates"}))
+            base = self.walk_forward_base(run)
             fold = fold_splits(base.windows, run.split, base.horizon)[run.split["fold"]]
             ws = self.in_vocabulary(run, base.windows, fold.train)
             self._prepared[key] = Prepared(ws, fold, base.truth_labels, base.horizon)
@@ -215,7 +219,7 @@ class Runner:
 
     def execute_folds(self, run: RunConfig) -> dict:
         """A walk-forward run: every fold as its own run (own fit, threshold, test span), combined into one record."""
-        prep = self.prepared(replace(run, split={"kind": "chronological", "fractions": [0.5, 0.2, 0.3]}))
+        prep = self.walk_forward_base(run)
         n = len(fold_splits(prep.windows, run.split, prep.horizon))
         folds = [replace(run, split={**run.split, "fold": i}) for i in range(n)]
         records = [self.execute(f) for f in folds]

@@ -88,7 +88,7 @@ def check_datasets(experiment: Experiment, names: list[str], home: Path, mirror:
                    progress: bool) -> None:
     """Acquire, ingest and read the truth of each dataset once before the grid; a data error stops it here."""
     from logtrial.data.acquire import fetch, local_origin, log_files, user_paths
-    from logtrial.data.ingest import ingest_files, read_events
+    from logtrial.data.ingest import TEXT_COLUMNS, ingest_files, read_events
     from logtrial.data.registry import SessionEntry, get_entry, load_registry
     from logtrial.labels.incidents import read_incidents
     from logtrial.labels.truth import truth_incidents
@@ -113,7 +113,7 @@ def check_datasets(experiment: Experiment, names: list[str], home: Path, mirror:
                 read_incidents(origins[entry.labels.file])  # errors name the user's own file
             table = ingest_files(entry.name, log_files(entry, folder), entry.format, entry.miner,
                                  home / "tables", progress=progress)
-            truth_incidents(entry, read_events(table.events), folder)
+            truth_incidents(entry, read_events(table.events, categories=TEXT_COLUMNS), folder)
         except DataError as exc:
             msg = str(exc) if folder is None else user_paths(str(exc), entry, folder)
             raise DataError(f"dataset '{name}': {msg.removeprefix(f'dataset {name!r}: ')}; "

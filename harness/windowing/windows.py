@@ -292,8 +292,8 @@ def session_codes(group: pd.Series) -> tuple[np.ndarray, np.ndarray]:
         if len(empty):
             codes[codes == empty[0]] = -1
         return codes.astype(np.int64), np.asarray(uniques, dtype=object)
-    grp = group.astype("str")
-    has = (grp.notna() & (grp != "")).to_numpy()
+    grp = group.fillna("").astype("str")
+    has = (grp != "").to_numpy()
     codes = np.full(len(grp), -1, dtype=np.int64)
     keep = np.flatnonzero(has)
     kept, uniques = pd.factorize(grp.iloc[keep], sort=True)
