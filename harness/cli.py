@@ -229,13 +229,11 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 def cmd_report(args: argparse.Namespace) -> int:
     """Write tables and plots from recorded runs."""
-    from logtrial.output.report import compact, to_text, write_report
-    from logtrial.running.experiment import experiment_order, load_experiment
+    from logtrial.output.report import compact, to_text, write_experiment_report
+    from logtrial.running.experiment import load_experiment
 
     exp = load_experiment(Path(args.experiment), output=args.out, registry=args.registry)
-    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs},
-                         description=exp.raw.get("description"),
-                         tolerance=exp.raw.get("tolerance"))
+    paths = write_experiment_report(exp)
     print(paths["decision"] + "\n\nAll figures at the threshold policy:")
     print(to_text(compact(paths["table"])))
     print(f"\nreport: {paths['markdown']}\n        {paths['html']}\n        {paths['csv']}")

@@ -18,9 +18,10 @@ def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True, 
     from logtrial.data.ingest import dataset_folder, ingest_files
     from logtrial.data.parse_score import score_against_truth
     from logtrial.data.registry import get_entry, home_dir, load_registry
-    from logtrial.output.report import compact, to_text, write_report
+    from logtrial.output.report import compact, to_text, write_experiment_report
     from logtrial.running.experiment import experiment_order, load_experiment
     from logtrial.running.runs import run_experiment
+    from logtrial.running.tracking import tracking_uri
 
     t0 = time.time()
     home = home_dir()
@@ -41,15 +42,15 @@ def run_demo(out: Path, experiment: Path = DEMO_EXPERIMENT, track: bool = True, 
           f"{len(experiment_order(exp)[1])} noise levels x {tasks} horizon(s) x {seeds} seed(s)", flush=True)
     counts = run_experiment(exp, home, progress=True, track=track, workers=workers)
     print("[4/4] writing the report", flush=True)
-    paths = write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs},
-                         description=exp.raw.get("description"))
+    paths = write_experiment_report(exp)
     print()
     print(paths["decision"] + "\n\nAll figures at the threshold policy:")
     print(to_text(compact(paths["table"])))
     print(f"\n{counts['finished']} runs finished, {counts['failed']} failed, {counts['skipped']} reused from before; "
           f"{time.time() - t0:.0f} s")
     print(f"report: {paths['markdown']}  (also {paths['html'].name}, results.csv, {', '.join(paths['pictures'])})")
-    print(f"tracking: mlflow ui --backend-store-uri sqlite:///{(exp.output / 'mlflow.db').resolve()}")
+    if track:
+        print(f"tracking: mlflow ui --backend-store-uri {tracking_uri(exp.output)}")
     return 1 if counts["failed"] else 0
 
 

@@ -26,7 +26,7 @@ from logtrial.output.decision import (
 )
 from logtrial.output.png import png_bytes
 from logtrial.output.tolerance import tolerance_section
-from logtrial.running.experiment import vocabulary_label
+from logtrial.running.experiment import Experiment, experiment_order, vocabulary_label
 
 # Headline figures: (record key, column title).
 HEADLINE = [
@@ -224,6 +224,12 @@ def decision_text(boards: list[Board], records: list[dict]) -> str:
                 title = point_title(next(b for b in mine if b.point == point), records)
                 lines.append(f"noise, at {title}: {movement_sentence(table)}")
     return "\n".join(lines)
+
+
+def write_experiment_report(exp: Experiment) -> dict:
+    """Write the report of an experiment's recorded runs (its detectors, noise levels, runs and tolerance block)."""
+    return write_report(exp.output, exp.name, *experiment_order(exp), run_ids={r.run_id for r in exp.runs},
+                        description=exp.raw.get("description"), tolerance=exp.raw.get("tolerance"))
 
 
 def write_report(output: Path, title: str, detectors: list[str] | None = None,
