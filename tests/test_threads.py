@@ -27,6 +27,18 @@ def test_pinned_threads_limits_blas_and_torch_and_restores_torch() -> None:
     assert torch.get_num_threads() == before
 
 
+def test_the_run_pin_overrides_a_torch_thread_setting_in_the_environment(monkeypatch) -> None:
+    # a user's LOGTRIAL_TORCH_THREADS must not give deep detectors more threads inside a run, on any engine
+    import torch
+    from logtrial.detectors.torch_train import THREADS_ENV, torch_session
+
+    monkeypatch.setenv(THREADS_ENV, "4")
+    with pinned_threads():
+        with torch_session(seed=0, threads=None):
+            assert torch.get_num_threads() == 1
+    assert __import__("os").environ[THREADS_ENV] == "4"
+
+
 def test_lof_grid_is_bit_identical_on_local_and_dask(tmp_path: Path, home: Path, cluster) -> None:  # noqa: F811
     # the local process is given 4 threads in every pool (a bigger machine); workers run single-threaded:
     # each run pins its own threads, so every figure and every score must still agree exactly
