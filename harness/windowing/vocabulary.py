@@ -19,7 +19,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import pandas as pd
 import scipy.sparse as sp
 import torch
 from logtrial.errors import ConfigError, DataError
@@ -172,22 +171,6 @@ def load_vocabulary_spec(spec: Any, where: str = "vocabulary") -> SemanticSpec |
             raise ConfigError(f"{where}.lr: expected a positive number, got {v!r}")
         values["lr"] = float(v)
     return SemanticSpec(**values)
-
-
-def apply_vocabulary(events: pd.DataFrame, templates: list[str], spec: Any, seed: int) -> tuple[pd.DataFrame, int]:
-    """The event table with ``event`` remapped to the chosen vocabulary, and the new vocabulary size."""
-    parsed = load_vocabulary_spec(spec)
-    if parsed is None:
-        return events, len(templates)
-    ev = events["event"].to_numpy()
-    if len(ev) and (int(ev.min()) < 0 or int(ev.max()) >= len(templates)):
-        raise DataError(
-            f"event table: event ids span {int(ev.min())}..{int(ev.max())} but {len(templates)} templates were given"
-        )
-    mapping = semantic_vocabulary(templates, parsed.k, seed, parsed.dim, parsed.window, parsed.epochs, parsed.lr)
-    out = events.copy()
-    out["event"] = mapping[ev].astype(np.int32)
-    return out, int(mapping.max()) + 1 if len(mapping) else 0
 
 
 def remap_windows(windows: WindowSet, mapping: np.ndarray) -> WindowSet:
