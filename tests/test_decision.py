@@ -19,7 +19,7 @@ from logtrial.evaluation.paired import (
     min_detectable_difference,
     wilson_interval,
 )
-from logtrial.output.decision import _board, board_table, format_duration, over_budget, sentence
+from logtrial.output.decision import _board, board_table, decision_boards, format_duration, over_budget, sentence
 from scipy.stats import binomtest, norm
 
 
@@ -150,3 +150,15 @@ def test_a_detector_far_over_its_budget_on_test_ranks_after_those_within_it() ->
     assert "no detector stayed within 2x the budget" in sentence(alone, recs) and "8.0x it" in sentence(alone, recs)
     within = _board("s", "clean", "5", [_record("d", 1, "1110000000", 3.0, [1, 1, 1])], ["d"])
     assert "Caution" not in sentence(within, recs)
+
+
+def test_settings_come_in_horizon_order_whatever_the_record_order() -> None:
+    # records arrive in run-id (hash) order; the sections must not: the 1-day horizon comes before the 7-day one
+    week = [_record("a", 1, "1100", 3.0, [9, 9]), _record("b", 1, "1000", 3.0, [9])]
+    day = [_record("a", 1, "1010", 3.0, [2, 2]), _record("b", 1, "0010", 3.0, [2])]
+    for r in week:
+        r["config"]["task"]["horizon"] = "7 days"
+    for r in week + day:
+        r["config"].update(dataset="d", windows={"kind": "time", "size": "1h"})
+    boards = decision_boards(week + day, ["a", "b"], ["clean"])
+    assert [b.horizon_h for b in boards] == [24.0, 24.0, 168.0, 168.0]  # budget 5, then the policy, per setting

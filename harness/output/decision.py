@@ -157,7 +157,11 @@ def decision_boards(records: list[dict], detectors: list[str], noises: list[str]
     budgets = sorted({k for r in fin for k in r.get("at_budget", {})}, key=float)
     n_rank = {n: i for i, n in enumerate(noises)}
     boards = []
-    settings = list(dict.fromkeys(s for s, _ in groups))
+    # settings in a stable, readable order (the records come in run-id order): task, then horizon, then label
+    first_cfg = {}
+    for r in fin:
+        first_cfg.setdefault(setting_label(r["config"]), r["config"])
+    settings = sorted(first_cfg, key=lambda s: _setting_order(first_cfg[s], s))
     for setting in settings:
         noise_names = sorted({nz for s, nz in groups if s == setting}, key=lambda x: (n_rank.get(x, 999), x))
         for point in budgets + ["policy"]:
@@ -166,6 +170,12 @@ def decision_boards(records: list[dict], detectors: list[str], noises: list[str]
                 if not b.rows.empty:
                     boards.append(b)
     return boards
+
+
+def _setting_order(cfg: dict, label: str) -> tuple:
+    """Sort key of a setting: task name, horizon (none first), then its label."""
+    horizon = cfg["task"].get("horizon")
+    return cfg["task"]["name"], pd.Timedelta(horizon) if horizon else pd.Timedelta(0), label
 
 
 def _policy_name(records: list[dict], short: bool = False) -> str:

@@ -301,7 +301,8 @@ def write_report(output: Path, title: str, detectors: list[str] | None = None,
         md += [foot, ""]
     if failed:
         md += [f"{len(failed)} run(s) failed:", ""] + [f"- `{r['run_id']}`: {r.get('error', '')}" for r in failed] + [""]
-    md += ["## Pictures", "", curves_note, ""]
+    shown = [f"The pictures show the first setting: {settings[0]}."] if len(settings) > 1 else []
+    md += ["## Pictures", "", *shown, curves_note, ""]
     md += [f"![{name.removesuffix('.png').replace('_', ' ')}]({name})\n" for name in pngs] + noise_section.markdown
     from logtrial.output.sections import extra_sections
 
