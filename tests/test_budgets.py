@@ -105,14 +105,11 @@ def test_every_run_has_each_budget_by_the_contract(grid: Path) -> None:
         val = scores[scores["part"] == "val"]
         for key, point in r["at_budget"].items():
             assert set(point) >= {"threshold", "metrics", "intervals", "lead_times_h", "outcomes"}
-            # The contract's one-line reader works, and falls back to the headline without budgets.
-            assert point["metrics"]["recall_predicted"] == r.get("at_budget", {}).get(key, r)["metrics"]["recall_predicted"]
             achieved = point["threshold"]["achieved"]
             assert achieved["alarms_per_week_per_100_entities"] <= float(key) + 1e-9
             assert len(point["outcomes"]["predicted"]) == point["metrics"]["failures"]
-            # Same threshold as the policy applied directly to the stored validation scores.
-            assert point["threshold"]["value"] == pytest.approx(r["at_budget"][key]["threshold"]["value"])
             assert np.isfinite(point["threshold"]["value"]) or achieved["alarms"] == 0
+            # (the threshold itself is recomputed from the stored validation scores in the next test)
         assert r["curve"]["points"] > 2 and "for reading" in r["curve"]["note"]
         curve = scores[scores["part"] == "curve"]
         assert len(curve) == r["curve"]["points"] and curve["curve_failures"].iloc[0] == r["metrics"]["failures"]
